@@ -1,0 +1,148 @@
+"""analyze(data, spec) -> Analysis: the one entry point that widgets, reports and the CLI call.
+
+It is a pure function of the table and the Spec: it reads the table (never changes it), runs the
+chosen estimator, turns potential-outcome means into the chosen measure with its interval, and adds
+the modification toolkit's tables. Everything shown anywhere in stratagem comes from here.
+"""
+
+from __future__ import annotations
+
+from typing import Any, Callable
+
+import numpy as np
+import pandas as pd
+
+from . import measures
+from .estimate import ESTIMATORS
+from .estimate.base import OK, GroupMeans
+from .estimate.bootstrap import bootstrap_means
+from .frame import Prepared, prepare
+from .results import OVERALL_FIELDS, STRATA_COLUMNS, Analysis
+from .spec import Spec
+
+__all__ = ["analyze", "extensions"]
+
+# Functions (prep, spec, means, analysis_fields) -> dict of extra Analysis fields, run in order.
+# The toolkit and diagnostics modules register here so analyze() stays one short pipeline.
+extensions: list[Callable] = []
+
+
+def analyze(
+    data: pd.DataFrame,
+    spec: Spec | dict | None = None,
+    /,
+    *,
+    progress: Callable[[float], None] | None = None,
+    **fields: Any,
+) -> Analysis:
+    """Estimate the effect of the exposure overall and within every stratum of the modifiers.
+
+    Parameters
+    ----------
+    data : pandas.DataFrame
+        One row per individual (or per cell of a table of counts, with ``counts=``). Only read.
+    spec : Spec, dict or None
+        A Spec, or a mapping of its fields; ``fields`` given as keywords override it.
+    progress : callable, optional
+        Called with the fraction of bootstrap work done (0 to 1). It may raise to abandon the work.
+    **fields
+        Any field of :class:`~stratagem.spec.Spec`: ``exposure``, ``outcome``, ``confounders``,
+        ``strata``, ``method``, ``measure``, ``level``, ``interval``, ``n_boot``, ``seed``, ``bins``,
+        ``potential_outcomes``, ``counts``, ``exposed_level``, ``missing``, ``max_levels``,
+        ``correction``, ``truncate``, ``monotone``.
+
+    Returns
+    -------
+    Analysis
+        Tables of per-stratum and overall effects, tests, response types and checks.
+
+    Examples
+    --------
+    >>> import stratagem as sg
+    >>> df = sg.demo_data()
+    >>> a = sg.analyze(df, exposure="visited", outcome="on_target", strata=("lives_alone",),
+    ...                method="crude")
+    >>> list(a.strata["lives_alone"])
+    ['no', 'yes']
+    """
+    spec = Spec.from_fields(spec, **fields)
+    prep, spec = prepare(data, spec)
+    estimator = ESTIMATORS.get(spec.method)
+    if estimator is None:  # a method named in the Spec whose module is not available
+        raise NotImplementedError(f"method={spec.method!r} is not available in this version.")
+    gm = estimator(prep, spec)
+    replicates = None
+    if spec.interval == "bootstrap" and spec.method != "exact":
+        replicates = bootstrap_means(estimator, prep, spec, progress=progress)
+    table = _effects_table(prep, spec, gm, replicates)
+    strata = table.iloc[:-1].reset_index(drop=True) if spec.strata else table.iloc[0:0]
+    overall = table.iloc[-1][OVERALL_FIELDS].rename("overall")
+    notes = list(prep.notes) + list(gm.notes)
+    result = dict(
+        spec=spec,
+        overall=overall,
+        strata=strata,
+        notes=tuple(notes),
+        n_input=prep.n_input,
+        n_dropped=prep.n_dropped,
+        extra={"replicates": replicates, **gm.extra},
+    )
+    if "response_types" in gm.extra:
+        result["response_types"] = gm.extra["response_types"]
+    for extend in extensions:
+        result.update(extend(prep, spec, gm, result))
+    return Analysis(**result)
+
+
+def _effects_table(prep: Prepared, spec: Spec, gm: GroupMeans, replicates) -> pd.DataFrame:
+    """One row per stratum plus the overall row, with the columns of STRATA_COLUMNS."""
+    if gm.theta is not None:
+        theta, se = gm.theta, gm.se
+    else:
+        theta, se = measures.on_analysis_scale(spec.measure, gm.m1, gm.m0, gm.v11, gm.v00, gm.v10)
+    status = list(gm.status)
+    if replicates is not None:
+        theta_b, _ = measures.on_analysis_scale(spec.measure, *replicates, 0.0, 0.0, 0.0)
+        est, lo, hi, p, se = _percentile(spec, theta, theta_b)
+    else:
+        est, lo, hi, p = measures.wald(spec.measure, theta, se, spec.level)
+    for g, s in enumerate(status):
+        if s == OK and not np.isfinite(theta[g]):
+            status[g] = f"{spec.measure} is undefined here (a risk of 0 or 1); try measure='rd'"
+    bad = np.array([s != OK for s in status])
+    est, se, lo, hi, p = (np.where(bad, np.nan, v) for v in (est, se, lo, hi, p))
+    labels = prep.labels.copy()
+    overall_label = {c: "" for c in labels.columns}
+    overall_label["stratum"] = "overall"
+    labels = pd.concat([labels, pd.DataFrame([overall_label])], ignore_index=True)
+    table = labels.assign(
+        n=gm.n,
+        n_exposed=gm.n1,
+        n_unexposed=gm.n0,
+        mean_exposed=gm.m1,
+        mean_unexposed=gm.m0,
+        estimate=est,
+        se=se,
+        ci_low=lo,
+        ci_high=hi,
+        p_value=p,
+        status=status,
+    )
+    return table[list(spec.strata) + STRATA_COLUMNS]
+
+
+def _percentile(spec: Spec, theta, theta_b):
+    """Percentile bootstrap interval; se is the replicates' standard deviation (analysis scale)."""
+    alpha = 1 - spec.level
+    finite = np.isfinite(theta_b)
+    with np.errstate(invalid="ignore"):
+        lo = np.array([np.quantile(col[ok], alpha / 2) if ok.sum() > 1 else np.nan
+                       for col, ok in zip(theta_b.T, finite.T)])
+        hi = np.array([np.quantile(col[ok], 1 - alpha / 2) if ok.sum() > 1 else np.nan
+                       for col, ok in zip(theta_b.T, finite.T)])
+        se = np.array([np.std(col[ok], ddof=1) if ok.sum() > 1 else np.nan
+                       for col, ok in zip(theta_b.T, finite.T)])
+    est, _, _, p = measures.wald(spec.measure, theta, se, spec.level)
+    if spec.measure in measures.RATIO:
+        lo, hi = np.exp(lo), np.exp(hi)
+    return est, lo, hi, p, se
