@@ -7,13 +7,14 @@ the modification toolkit's tables. Everything shown anywhere in stratagem comes 
 
 from __future__ import annotations
 
+from importlib import import_module
 from typing import Any, Callable
 
 import numpy as np
 import pandas as pd
 
 from . import measures
-from .estimate import ESTIMATORS
+from .estimate import get_estimator
 from .estimate.base import OK, GroupMeans
 from .estimate.bootstrap import bootstrap_means
 from .frame import Prepared, prepare
@@ -22,9 +23,24 @@ from .spec import Spec
 
 __all__ = ["analyze", "extensions"]
 
-# Functions (prep, spec, means, analysis_fields) -> dict of extra Analysis fields, run in order.
-# The toolkit and diagnostics modules register here so analyze() stays one short pipeline.
-extensions: list[Callable] = []
+# Steps run after estimation, in order: "module:function" in this package, each called as
+# f(prep, spec, means, fields) -> dict of Analysis fields to set or replace. Diagnostics and the
+# modification toolkit live in their own modules so analyze() stays one short pipeline.
+extensions: list[str] = [
+    "diagnostics:diagnostics_fields",
+    "modify:toolkit_fields",
+]
+
+
+def _extension(path: str):
+    module, _, function = path.partition(":")
+    try:
+        mod = import_module(f"{__package__}.{module}")
+    except ModuleNotFoundError as exc:  # a step whose module is not in this build
+        if exc.name == f"{__package__}.{module}":
+            return None
+        raise
+    return getattr(mod, function)
 
 
 def analyze(
@@ -67,9 +83,7 @@ def analyze(
     """
     spec = Spec.from_fields(spec, **fields)
     prep, spec = prepare(data, spec)
-    estimator = ESTIMATORS.get(spec.method)
-    if estimator is None:  # a method named in the Spec whose module is not available
-        raise NotImplementedError(f"method={spec.method!r} is not available in this version.")
+    estimator = get_estimator(spec.method)
     gm = estimator(prep, spec)
     replicates = None
     if spec.interval == "bootstrap" and spec.method != "exact":
@@ -89,8 +103,10 @@ def analyze(
     )
     if "response_types" in gm.extra:
         result["response_types"] = gm.extra["response_types"]
-    for extend in extensions:
-        result.update(extend(prep, spec, gm, result))
+    for path in extensions:
+        step = _extension(path)
+        if step is not None:
+            result.update(step(prep, spec, gm, result))
     return Analysis(**result)
 
 
