@@ -99,7 +99,8 @@ def analyze(
         notes=tuple(notes),
         n_input=prep.n_input,
         n_dropped=prep.n_dropped,
-        extra={"replicates": replicates, **gm.extra},
+        extra={"replicates": replicates, "bin_edges": dict(prep.bin_edges),
+               "covariance": {"v11": gm.v11, "v00": gm.v00, "v10": gm.v10}, **gm.extra},
     )
     if "response_types" in gm.extra:
         result["response_types"] = gm.extra["response_types"]

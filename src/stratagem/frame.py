@@ -23,7 +23,15 @@ from .errors import (
 )
 from .spec import Spec
 
-__all__ = ["Prepared", "prepare", "resolve", "modifier_summary", "DEFAULT_BINS", "BIN_THRESHOLD"]
+__all__ = [
+    "Prepared",
+    "prepare",
+    "resolve",
+    "modifier_summary",
+    "label_strata",
+    "DEFAULT_BINS",
+    "BIN_THRESHOLD",
+]
 
 DEFAULT_BINS = 4  # quantile bins for a numeric modifier without a bins entry
 BIN_THRESHOLD = 10  # a numeric modifier with more distinct values than this is binned
@@ -234,12 +242,15 @@ def _bin(s: pd.Series, name: str, rule) -> tuple[pd.Categorical, tuple, str]:
     return cat, tuple(float(e) for e in edges), how
 
 
-def _modifier_levels(s: pd.Series, name: str, spec: Spec) -> tuple[pd.Categorical, tuple | None, str | None]:
-    """Categorical of level labels for one modifier; numeric columns with many values are binned."""
+def _modifier_levels(
+    s: pd.Series, name: str, spec: Spec, *, auto_bin: bool = True
+) -> tuple[pd.Categorical, tuple | None, str | None]:
+    """Categorical of level labels for one modifier; numeric columns with many values are binned
+    (unless ``auto_bin`` is False: then each value is its own level, as for few distinct values)."""
     rule = spec.bins.get(name)
     if _is_numeric(s):
         n_distinct = s.nunique()
-        if rule is None and n_distinct > BIN_THRESHOLD:
+        if rule is None and auto_bin and n_distinct > BIN_THRESHOLD:
             rule = DEFAULT_BINS
         if rule is not None:
             cat, edges, how = _bin(s, name, rule)
@@ -297,10 +308,43 @@ def _strata(df: pd.DataFrame, spec: Spec) -> tuple[np.ndarray, pd.DataFrame, lis
         labels[name] = np.asarray(cats[name].categories)[rest % k]
         rest = rest // k
     frame = pd.DataFrame({name: labels[name] for name in spec.strata})
-    frame["stratum"] = [
-        ", ".join(f"{name}={frame.at[i, name]}" for name in spec.strata) for i in range(len(frame))
-    ]
+    frame["stratum"] = _combined_labels(frame, spec.strata)
     return stratum.astype(np.int64), frame, notes, edges
+
+
+def _combined_labels(frame: pd.DataFrame, names) -> list[str]:
+    """The readable stratum label of every row, e.g. ``"sex=female, age=[30, 50)"``."""
+    parts = [f"{name}=" + frame[name].astype(str) for name in names]  # whole columns at once
+    out = parts[0]
+    for part in parts[1:]:
+        out = out + ", " + part
+    return list(out)
+
+
+def label_strata(data: pd.DataFrame, spec: Spec, bin_edges: dict | None = None) -> pd.DataFrame:
+    """Label every row of a new table with the strata of an analysis that used ``spec``.
+
+    Numeric modifiers that the analysis binned are cut at the analysis's own edges (``bin_edges``,
+    from :attr:`Prepared.bin_edges`); every other modifier gets level labels exactly as
+    :func:`prepare` makes them, never new bins. Rows must have no missing modifier values, and
+    binned values must lie within the edges (else :class:`ModifierError`).
+
+    Returns a DataFrame aligned with ``data`` (index reset): one column per modifier, then
+    ``stratum``, the combined label used in ``Analysis.strata``.
+    """
+    bin_edges = dict(bin_edges or {})
+    plain = spec.replace(bins={})
+    cols = {}
+    for name in spec.strata:
+        s = data[name].reset_index(drop=True)
+        if name in bin_edges:
+            cat, _, _ = _bin(s, name, bin_edges[name])
+        else:
+            cat, _, _ = _modifier_levels(s, name, plain, auto_bin=False)
+        cols[name] = np.asarray(cat, dtype=object)
+    frame = pd.DataFrame(cols, index=pd.RangeIndex(len(data)))
+    frame["stratum"] = _combined_labels(frame, spec.strata)
+    return frame
 
 
 def prepare(data: pd.DataFrame, spec: Spec) -> tuple[Prepared, Spec]:
