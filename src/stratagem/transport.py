@@ -13,8 +13,8 @@ from __future__ import annotations
 
 import html
 import math
+from collections.abc import Mapping
 from dataclasses import dataclass, field
-from typing import Mapping
 
 import numpy as np
 import pandas as pd
