@@ -1,0 +1,378 @@
+"""The Explorer: an anywidget whose state is a Spec and whose view is the Analysis of that Spec.
+
+Traits, in three kinds (see DESIGN.md and the widget contract):
+
+* public inputs the front end writes: ``strata``, ``bins``, ``method``, ``measure``, ``level``,
+  ``interval``, ``n_boot``;
+* derived state Python writes (leading underscore): ``_variables``, ``_result``, ``_status``;
+* Python-only: :attr:`Explorer.analysis` and :attr:`Explorer.spec`.
+
+Every change of an input builds a new Spec and calls :func:`stratagem.analyze` on a worker thread;
+the newest request supersedes running ones (their results are dropped); the result is published as
+JSON (:func:`~.payload.analysis_payload`) together with a static HTML snapshot that replaces the
+``text/html`` of every displayed copy of the widget (through its display id). Nothing shown is
+computed anywhere but in ``analyze``.
+"""
+
+from __future__ import annotations
+
+import pathlib
+import threading
+import time
+from typing import Any, Sequence
+
+import anywidget
+import pandas as pd
+import traitlets
+
+from ..analysis import analyze
+from ..errors import ColumnNotFoundError, DataError, SpecError, StratagemError
+from ..frame import modifier_summary
+from ..results import Analysis
+from ..spec import Spec
+from .payload import analysis_payload
+from .snapshot import placeholder_html, snapshot_html
+from .worker import Outcome, Runner, kernel_post
+
+__all__ = ["Explorer", "front_end_file"]
+
+
+def _raise(exc, _check):
+    raise exc
+
+_PACKAGE = pathlib.Path(__file__).resolve().parent.parent
+
+
+def front_end_file(name: str) -> pathlib.Path:
+    """``stratagem/static/<name>`` of an installed wheel, else the repository's ``js/<name>``."""
+    shipped = _PACKAGE / "static" / name
+    if shipped.exists():
+        return shipped
+    repo = _PACKAGE.parent.parent / "js" / name
+    if repo.exists():
+        return repo
+    raise FileNotFoundError(
+        f"The Explorer's front-end file {name!r} is missing from {shipped} and {repo}; "
+        "reinstall stratagem."
+    )
+
+
+# Spec fields the widget does not edit but passes through from the constructor.
+_FIXED = ("confounders", "seed", "potential_outcomes", "counts", "exposed_level", "missing",
+          "max_levels", "correction", "truncate", "monotone")
+
+_PROGRESS_STEP = 0.02  # publish bootstrap progress in steps of 2% at most
+_PROGRESS_INTERVAL = 0.1  # ... and at most every 0.1 s
+
+
+def _friendly(exc: BaseException) -> str:
+    """The message shown in the widget for an exception raised by ``analyze``."""
+    if isinstance(exc, StratagemError):
+        return str(exc)
+    if isinstance(exc, ModuleNotFoundError) and str(exc.name or "").startswith("stratagem.estimate."):
+        method = str(exc.name).rsplit(".", 1)[-1].replace("_", "-")
+        return f"The {method!r} method is not available in this version of stratagem; choose another method."
+    return f"The analysis failed ({type(exc).__name__}: {exc}). Change a choice or report this as a bug."
+
+
+class Explorer(anywidget.AnyWidget):
+    """Explore effect modification interactively: drag modifiers into "Stratify by", read effects.
+
+    Parameters
+    ----------
+    data : pandas.DataFrame
+        The table; only read (never changed).
+    exposure, outcome : str
+        Column names (see :class:`~stratagem.spec.Spec`).
+    confounders : sequence of str
+        Columns adjusted for.
+    strata : sequence of str
+        Initial modifiers, in nesting order.
+    method, measure : str or None
+        As in :func:`stratagem.analyze`; None lets stratagem choose.
+    level : float
+        Confidence level in (0, 1).
+    interval : {"wald", "bootstrap"}
+    n_boot : int
+        Bootstrap replicates.
+    bins : mapping of str to int
+        Quantile bins per numeric modifier.
+    variables : sequence of str or None
+        Columns offered as modifiers; None offers every column except the exposure, outcome,
+        counts and potential-outcome columns.
+    data_name : str
+        The name the Code view uses for the table (default ``"df"``).
+    sync : bool
+        Compute on the calling thread instead of a worker thread (for scripts and tests).
+    **fixed
+        Other Spec fields passed through unchanged: ``seed``, ``potential_outcomes``, ``counts``,
+        ``exposed_level``, ``missing``, ``max_levels``, ``correction``, ``truncate``, ``monotone``.
+
+    Attributes
+    ----------
+    analysis : Analysis or None
+        The Analysis on screen (the newest successful one).
+    spec : Spec
+        Its Spec (resolved: method and measure filled in).
+    """
+
+    _esm = front_end_file("explorer.js")
+    _css = front_end_file("explorer.css")
+
+    strata = traitlets.List(traitlets.Unicode(), default_value=[]).tag(sync=True)
+    bins = traitlets.Dict(default_value={}).tag(sync=True)
+    method = traitlets.Unicode(None, allow_none=True).tag(sync=True)
+    measure = traitlets.Unicode(None, allow_none=True).tag(sync=True)
+    level = traitlets.Float(0.95).tag(sync=True)
+    interval = traitlets.Unicode("wald").tag(sync=True)
+    n_boot = traitlets.Int(1000).tag(sync=True)
+
+    _variables = traitlets.List(default_value=[]).tag(sync=True)
+    _result = traitlets.Dict(default_value={}).tag(sync=True)
+    _status = traitlets.Dict(default_value={"state": "idle", "message": "", "progress": 0.0}).tag(sync=True)
+
+    _INPUTS = ("strata", "bins", "method", "measure", "level", "interval", "n_boot")
+
+    def __init__(
+        self,
+        data: pd.DataFrame,
+        *,
+        exposure: str,
+        outcome: str,
+        confounders: Sequence[str] = (),
+        strata: Sequence[str] = (),
+        method: str | None = None,
+        measure: str | None = None,
+        level: float = 0.95,
+        interval: str = "wald",
+        n_boot: int = 1000,
+        bins: dict | None = None,
+        variables: Sequence[str] | None = None,
+        data_name: str = "df",
+        sync: bool = False,
+        **fixed: Any,
+    ):
+        if not isinstance(data, pd.DataFrame):
+            raise DataError(
+                f"Explorer needs a pandas DataFrame; got {type(data).__name__}. "
+                "Convert it first, e.g. pd.DataFrame(data)."
+            )
+        unknown = sorted(set(fixed) - set(_FIXED))
+        if unknown:
+            raise SpecError(
+                f"Unknown Explorer argument(s) {unknown}. Valid: exposure, outcome, strata, method, "
+                f"measure, level, interval, n_boot, bins, variables, data_name, sync, {', '.join(_FIXED)}."
+            )
+        if not data_name.isidentifier():
+            raise SpecError(f"data_name must be a Python identifier, e.g. 'df'; got {data_name!r}.")
+        self._data = data
+        self._data_name = data_name
+        self._fixed = {"confounders": tuple(confounders), **fixed}
+        self._base = Spec.from_fields(
+            exposure=exposure, outcome=outcome, strata=tuple(strata), method=method, measure=measure,
+            level=level, interval=interval, n_boot=n_boot, bins=dict(bins or {}), **self._fixed,
+        )  # validates every field now, so a mistake raises here with the usual message
+        missing = [c for c in (exposure, outcome, *confounders, *strata) if c not in data.columns]
+        if missing:
+            raise ColumnNotFoundError(
+                f"Column {missing[0]!r} is not in the data. Columns are: "
+                f"{[str(c) for c in data.columns[:12]]}. Pass one of these names."
+            )
+        self._sync_mode = sync
+        self._lock = threading.RLock()
+        self._analysis: Analysis | None = None
+        self._requested: Spec | None = None
+        self._display_id = None
+        self._last_progress = (0.0, 0.0)
+        super().__init__(
+            strata=list(strata), bins=dict(bins or {}), method=method, measure=measure,
+            level=float(level), interval=interval, n_boot=int(n_boot),
+        )
+        self._variables = self._describe_variables(variables)
+        self._runner = Runner(self._deliver, post=None)
+        # The first result is computed before the constructor returns, so the first display already
+        # carries the table and its snapshot.
+        self._compute_now()
+        self.observe(self._on_input, names=list(self._INPUTS))
+
+    # -- public ------------------------------------------------------------------------------------
+    @property
+    def analysis(self) -> Analysis | None:
+        """The Analysis on screen (newest successful result), or None before the first one."""
+        return self._analysis
+
+    @property
+    def spec(self) -> Spec:
+        """The Spec of the Analysis on screen (resolved), or the requested Spec before any result."""
+        if self._analysis is not None:
+            return self._analysis.spec
+        return self._requested if self._requested is not None else self._base
+
+    @property
+    def data(self) -> pd.DataFrame:
+        """The table the Explorer reads (never changed by it)."""
+        return self._data
+
+    def wait(self, timeout: float | None = 30.0) -> Analysis | None:
+        """Block until the newest request has been computed and published; return the Analysis.
+
+        Raises TimeoutError after ``timeout`` seconds. When the newest request failed, the error is
+        in ``_status`` and the previous Analysis is returned.
+        """
+        if not self._runner.wait(timeout):
+            raise TimeoutError(
+                f"The Explorer's computation did not finish within {timeout} s; wait longer "
+                "(e.g. wait(timeout=120)) or use fewer bootstrap replicates."
+            )
+        return self._analysis
+
+    def close(self) -> None:
+        """Stop the worker thread and close the widget."""
+        self._runner.close()
+        super().close()
+
+    # -- inputs -> Spec --------------------------------------------------------------------------
+    def _spec_from_traits(self) -> Spec:
+        strata = tuple(self.strata)
+        bins = {k: v for k, v in dict(self.bins).items() if k in strata}
+        return Spec.from_fields(
+            exposure=self._base.exposure, outcome=self._base.outcome, strata=strata,
+            method=self.method or None, measure=self.measure or None, level=float(self.level),
+            interval=self.interval, n_boot=int(self.n_boot), bins=bins, **self._fixed,
+        )
+
+    def _describe_variables(self, variables: Sequence[str] | None) -> list[dict]:
+        base = self._base
+        taken = {base.exposure, base.outcome, base.counts, *(base.potential_outcomes or ())}
+        if variables is None:
+            names = [c for c in self._data.columns if isinstance(c, str) and c not in taken]
+        else:
+            names = list(variables)
+            bad = [c for c in names if c not in self._data.columns]
+            if bad:
+                raise ColumnNotFoundError(
+                    f"variables names {bad[0]!r}, which is not in the data; pass column names."
+                )
+        out = []
+        for name in names:
+            info = modifier_summary(self._data, name, max_levels=base.max_levels)
+            out.append({"name": name, "tag": info["tag"], "ok": bool(info["ok"]),
+                        "reason": info["reason"], "kind": info["kind"]})
+        return out
+
+    def _on_input(self, change) -> None:
+        self._request()
+
+    def _request(self) -> None:
+        """Build the Spec from the traits and start computing it (superseding older requests)."""
+        self._set_status("running", "", 0.0)
+        try:
+            spec = self._spec_from_traits()
+        except StratagemError as exc:
+            self._runner.run_here(_raise, exc)  # a bad choice is an error outcome like any other
+            return
+        self._requested = spec
+        if self._sync_mode:
+            self._runner.run_here(self._job, spec)
+        else:
+            self._runner.submit(self._job, spec)
+
+    def _compute_now(self) -> None:
+        """First result, computed on this thread through the same delivery path."""
+        self._requested = self._base
+        self._runner.run_here(self._job, self._base)
+
+    # -- the job (worker thread) ---------------------------------------------------------------------
+    def _job(self, spec: Spec, check) -> tuple[Analysis, dict, str]:
+        check()
+        self._last_progress = (0.0, time.monotonic())
+
+        def progress(fraction: float) -> None:
+            check()  # raises Superseded when a newer request came in: stops the bootstrap early
+            last, when = self._last_progress
+            now = time.monotonic()
+            if fraction - last >= _PROGRESS_STEP and now - when >= _PROGRESS_INTERVAL:
+                self._last_progress = (fraction, now)
+                self._post(lambda: self._progress(check, fraction))
+
+        analysis = analyze(self._data, spec, progress=progress)
+        check()
+        payload = analysis_payload(analysis, self._data_name)
+        return analysis, payload, snapshot_html(payload)
+
+    def _post(self, fn) -> None:
+        post = kernel_post()
+        if post is None:
+            fn()
+        else:
+            post(fn)
+
+    def _progress(self, check, fraction: float) -> None:
+        try:
+            check()
+        except Exception:
+            return
+        with self._lock:
+            self._set_status("running", "", fraction)
+
+    # -- publishing (main loop) --------------------------------------------------------------------
+    def _deliver(self, outcome: Outcome) -> None:
+        with self._lock:
+            if outcome.error is not None:
+                self._set_status("error", _friendly(outcome.error), 0.0)
+                self._refresh_display()
+                return
+            analysis, payload, html = outcome.value
+            self._analysis = analysis
+            self._snapshot = html
+            with self.hold_sync():
+                self._result = payload
+                self._status = {"state": "idle", "message": "", "progress": 1.0}
+            self._refresh_display()
+
+    def _set_status(self, state: str, message: str, progress: float) -> None:
+        self._status = {"state": state, "message": message, "progress": float(progress)}
+
+    # -- display -------------------------------------------------------------------------------
+    _snapshot: str | None = None
+
+    def _snapshot_html(self) -> str:
+        if self._snapshot is not None:
+            html = self._snapshot
+            if self._status.get("state") == "error":
+                from html import escape
+
+                html = (f'<p style="color:#D55E00">{escape(self._status.get("message", ""))} '
+                        "(the result below is the last one that succeeded)</p>" + html)
+            return html
+        message = self._status.get("message") or "no result yet"
+        return placeholder_html(message)
+
+    def _repr_mimebundle_(self, **kwargs):
+        bundle = super()._repr_mimebundle_(**kwargs)
+        if isinstance(bundle, tuple):  # (data, metadata)
+            data, meta = bundle
+        else:
+            data, meta = bundle, {}
+        data = dict(data or {})
+        data["text/html"] = self._snapshot_html()
+        return (data, meta) if isinstance(bundle, tuple) else data
+
+    def _ipython_display_(self, **kwargs) -> None:
+        from IPython.display import display
+
+        if self._display_id is None:
+            self._display_id = f"stratagem-explorer-{self.model_id}"
+        bundle = self._repr_mimebundle_()
+        data, meta = bundle if isinstance(bundle, tuple) else (bundle, {})
+        display(data, metadata=meta, raw=True, display_id=self._display_id)
+
+    def _refresh_display(self) -> None:
+        """Replace the ``text/html`` snapshot of every displayed copy (keeps saved notebooks current)."""
+        if self._display_id is None:
+            return
+        from IPython.display import update_display
+
+        bundle = self._repr_mimebundle_()
+        data, meta = bundle if isinstance(bundle, tuple) else (bundle, {})
+        update_display(data, metadata=meta, raw=True, display_id=self._display_id)

@@ -1,0 +1,107 @@
+"""Analysis -> plain JSON for the front end and the static snapshot.
+
+Nothing is computed here: every number is copied from the :class:`~stratagem.results.Analysis`
+tables. NaN and infinities become ``None`` (JSON has no NaN), numpy scalars become Python numbers,
+so a float arrives in the browser with its full precision (a double survives JSON unchanged).
+"""
+
+from __future__ import annotations
+
+import math
+from typing import Any
+
+import numpy as np
+import pandas as pd
+
+from ..measures import RATIO, null_value
+from ..results import CAUTION, MEASURE_NAMES, STRATA_COLUMNS, Analysis
+
+__all__ = ["analysis_payload", "plain", "records", "ROW_FIELDS"]
+
+# Fields of one effects row sent to the front end (the table's columns, in DESIGN.md's names).
+ROW_FIELDS = STRATA_COLUMNS
+
+
+def plain(value: Any) -> Any:
+    """A JSON-ready copy of ``value``: numpy scalars to Python, NaN/inf to None, tuples to lists."""
+    if isinstance(value, dict):
+        return {str(k): plain(v) for k, v in value.items()}
+    if isinstance(value, (list, tuple)):
+        return [plain(v) for v in value]
+    if isinstance(value, np.ndarray):
+        return [plain(v) for v in value.tolist()]
+    if isinstance(value, (bool, np.bool_)):
+        return bool(value)
+    if isinstance(value, (int, np.integer)):
+        return int(value)
+    if isinstance(value, (float, np.floating)):
+        value = float(value)
+        return value if math.isfinite(value) else None
+    if value is None or value is pd.NA or value is pd.NaT:
+        return None
+    if isinstance(value, str):
+        return value
+    try:
+        if pd.isna(value):
+            return None
+    except (TypeError, ValueError):
+        pass
+    return str(value)
+
+
+def records(frame: pd.DataFrame | None) -> list[dict]:
+    """Rows of ``frame`` as a list of JSON-ready dicts (column order kept)."""
+    if frame is None or len(frame) == 0:
+        return []
+    cols = [str(c) for c in frame.columns]
+    return [
+        {c: plain(v) for c, v in zip(cols, row)}
+        for row in frame.itertuples(index=False, name=None)
+    ]
+
+
+def _rows(analysis: Analysis) -> list[dict]:
+    """Strata rows then the overall row, each with ``levels`` (modifier -> level label)."""
+    frame = analysis.to_frame()
+    out = []
+    for row in frame.to_dict(orient="records"):
+        entry = {k: plain(row.get(k)) for k in ROW_FIELDS}
+        entry["levels"] = {m: plain(row.get(m)) for m in analysis.modifiers}
+        out.append(entry)
+    return out
+
+
+def analysis_payload(analysis: Analysis, data_name: str = "df") -> dict:
+    """Everything the Explorer's views show, as one JSON-ready dict.
+
+    Keys: ``spec`` (the resolved Spec as a dict), ``modifiers``, ``measure``, ``measure_name``,
+    ``ratio`` (bool: log axis), ``null`` (no-effect value), ``level``, ``scale_note``, ``title``,
+    ``rows`` (strata then overall; fields of :data:`ROW_FIELDS` plus ``levels``), ``heterogeneity``,
+    ``response_types``, ``diagnostics`` (records of those tables), ``notes``, ``caution``,
+    ``recipe`` (:meth:`Analysis.recipe` text), ``n_input``, ``n_dropped``.
+    """
+    spec = analysis.spec
+    return {
+        "spec": plain(spec.to_dict()),
+        "modifiers": list(analysis.modifiers),
+        "exposure": spec.exposure,
+        "outcome": spec.outcome,
+        "method": spec.method,
+        "measure": spec.measure,
+        "measure_name": MEASURE_NAMES.get(spec.measure, spec.measure),
+        "ratio": spec.measure in RATIO,
+        "null": null_value(spec.measure),
+        "level": spec.level,
+        "interval": spec.interval,
+        "scale_note": analysis.scale_note,
+        "title": f"Effect of {spec.exposure} on {spec.outcome}",
+        "rows": _rows(analysis),
+        "heterogeneity": records(analysis.heterogeneity),
+        "response_types": records(analysis.response_types),
+        "diagnostics": records(analysis.diagnostics),
+        "notes": [str(n) for n in analysis.notes],
+        "caution": CAUTION,
+        "recipe": analysis.recipe(data_name),
+        "n_input": int(analysis.n_input),
+        "n_dropped": int(analysis.n_dropped),
+    }
