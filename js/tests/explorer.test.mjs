@@ -1,0 +1,335 @@
+// Unit tests of js/explorer.js against jsdom and a fake model (node --test).
+import { test, beforeEach } from "node:test";
+import assert from "node:assert/strict";
+import { installDom, fakeModel, baseState, result, row, dragEvent } from "./helpers.mjs";
+
+installDom();
+const { default: widget, axis, niceTicks, placeColumn, shiftColumn, HEAD_H, ROW_H } = await import("../explorer.js");
+
+let el;
+beforeEach(() => {
+  document.body.replaceChildren();
+  el = document.createElement("div");
+  document.body.append(el);
+});
+
+function mount(state = {}) {
+  const model = fakeModel(baseState(state));
+  const cleanup = widget.render({ model, el });
+  return { model, cleanup, root: el.querySelector(".sg-explorer") };
+}
+
+const HOSTILE = "<img src=x onerror=alert(1)>";
+
+test("chips render for every variable; unusable ones are disabled with the reason", () => {
+  const { root } = mount();
+  const chips = root.querySelectorAll(".sg-variables .sg-chip[data-column]");
+  assert.deepEqual([...chips].map((c) => c.getAttribute("data-column")), ["sex", "age", "insulin", "id"]);
+  const sex = root.querySelector('.sg-variables .sg-chip[data-column="sex"]');
+  assert.equal(sex.getAttribute("draggable"), "true");
+  assert.equal(sex.getAttribute("tabindex"), "0");
+  assert.equal(sex.querySelector(".sg-tag").textContent, "2 levels");
+  const id = root.querySelector('.sg-variables .sg-chip[data-column="id"]');
+  assert.equal(id.getAttribute("aria-disabled"), "true");
+  assert.match(id.getAttribute("title"), /4000 levels/);
+  assert.equal(id.querySelector(".sg-add").disabled, true);
+  assert.equal(root.querySelector(".sg-zone .sg-chip"), null);
+});
+
+test("drop on the zone appends the column and saves", () => {
+  const { model, root } = mount();
+  const zone = root.querySelector(".sg-zone");
+  const over = dragEvent("dragover");
+  zone.dispatchEvent(over);
+  assert.equal(over.defaultPrevented, true, "dragover must be cancelled so drop is allowed");
+  zone.dispatchEvent(dragEvent("drop", { "text/plain": "sex" }));
+  assert.deepEqual(model.get("strata"), ["sex"]);
+  assert.ok(model.log.saves >= 1);
+  zone.dispatchEvent(dragEvent("drop", { "application/x-stratagem-column": "insulin" }));
+  assert.deepEqual(model.get("strata"), ["sex", "insulin"]);
+  const zoneChips = [...root.querySelectorAll(".sg-zone .sg-chip")].map((c) => c.getAttribute("data-column"));
+  assert.deepEqual(zoneChips, ["sex", "insulin"]);
+  assert.ok(root.querySelector('.sg-zone .sg-chip[data-column="sex"] .sg-remove'));
+});
+
+test("dragstart puts the column name on the dataTransfer", () => {
+  const { root } = mount();
+  const chip = root.querySelector('.sg-variables .sg-chip[data-column="age"]');
+  const start = dragEvent("dragstart");
+  chip.dispatchEvent(start);
+  assert.equal(start.dataTransfer.store["text/plain"], "age");
+  assert.equal(start.dataTransfer.store["application/x-stratagem-column"], "age");
+});
+
+test("dropping a disabled or unknown column does nothing", () => {
+  const { model, root } = mount();
+  const zone = root.querySelector(".sg-zone");
+  zone.dispatchEvent(dragEvent("drop", { "text/plain": "id" }));
+  zone.dispatchEvent(dragEvent("drop", { "text/plain": "not-a-column" }));
+  assert.deepEqual(model.get("strata"), []);
+  assert.equal(model.log.saves, 0);
+});
+
+test("dropping a zone chip on another reorders (nesting order)", () => {
+  const { model, root } = mount({ strata: ["sex", "age", "insulin"] });
+  const target = root.querySelector('.sg-zone .sg-chip[data-column="sex"] .sg-name');
+  target.dispatchEvent(dragEvent("drop", { "text/plain": "insulin" }));
+  assert.deepEqual(model.get("strata"), ["insulin", "sex", "age"]);
+});
+
+test("placeColumn and shiftColumn", () => {
+  assert.deepEqual(placeColumn(["a", "b", "c"], "a", "c"), ["b", "c", "a"]);
+  assert.deepEqual(placeColumn(["a", "b", "c"], "c", "a"), ["c", "a", "b"]);
+  assert.deepEqual(placeColumn(["a", "b"], "x", "b"), ["a", "x", "b"]);
+  assert.deepEqual(placeColumn(["a", "b"], "x", null), ["a", "b", "x"]);
+  assert.deepEqual(placeColumn(["a", "b"], "a", null), ["b", "a"]);
+  assert.deepEqual(placeColumn(["a", "b"], "a", "a"), ["a", "b"]);
+  assert.deepEqual(shiftColumn(["a", "b", "c"], "b", -1), ["b", "a", "c"]);
+  assert.deepEqual(shiftColumn(["a", "b", "c"], "c", 1), ["a", "b", "c"]);
+});
+
+test("keyboard: Enter and the add button add; Delete, Backspace and the × remove", () => {
+  const { model, root } = mount();
+  const sex = root.querySelector('.sg-variables .sg-chip[data-column="sex"]');
+  sex.dispatchEvent(new KeyboardEvent("keydown", { key: "Enter", bubbles: true }));
+  assert.deepEqual(model.get("strata"), ["sex"]);
+  root.querySelector('.sg-variables .sg-chip[data-column="insulin"] .sg-add').click();
+  assert.deepEqual(model.get("strata"), ["sex", "insulin"]);
+  // Adding again does not duplicate; the chip shows it is in use.
+  root.querySelector('.sg-variables .sg-chip[data-column="sex"]').dispatchEvent(
+    new KeyboardEvent("keydown", { key: "Enter", bubbles: true }));
+  assert.deepEqual(model.get("strata"), ["sex", "insulin"]);
+  assert.ok(root.querySelector('.sg-variables .sg-chip[data-column="sex"]').classList.contains("sg-used"));
+  const zoneSex = root.querySelector('.sg-zone .sg-chip[data-column="sex"]');
+  zoneSex.dispatchEvent(new KeyboardEvent("keydown", { key: "Delete", bubbles: true }));
+  assert.deepEqual(model.get("strata"), ["insulin"]);
+  root.querySelector('.sg-zone .sg-chip[data-column="insulin"]').dispatchEvent(
+    new KeyboardEvent("keydown", { key: "Backspace", bubbles: true }));
+  assert.deepEqual(model.get("strata"), []);
+  root.querySelector('.sg-variables .sg-chip[data-column="age"] .sg-add').click();
+  root.querySelector('.sg-zone .sg-chip[data-column="age"] .sg-remove').click();
+  assert.deepEqual(model.get("strata"), []);
+});
+
+test("Alt+arrows reorder a zone chip", () => {
+  const { model, root } = mount({ strata: ["sex", "insulin"] });
+  root.querySelector('.sg-zone .sg-chip[data-column="insulin"]').dispatchEvent(
+    new KeyboardEvent("keydown", { key: "ArrowLeft", altKey: true, bubbles: true }));
+  assert.deepEqual(model.get("strata"), ["insulin", "sex"]);
+});
+
+test("numeric chips in the zone carry a bin count that writes bins; removing drops their bins", () => {
+  const { model, root } = mount({ strata: ["age", "sex"], bins: { age: 3 } });
+  const input = root.querySelector('.sg-zone .sg-chip[data-column="age"] .sg-bins');
+  assert.equal(input.value, "3");
+  assert.equal(root.querySelector('.sg-zone .sg-chip[data-column="sex"] .sg-bins'), null);
+  input.value = "5";
+  input.dispatchEvent(new Event("change", { bubbles: true }));
+  assert.deepEqual(model.get("bins"), { age: 5 });
+  root.querySelector('.sg-zone .sg-chip[data-column="age"] .sg-remove').click();
+  assert.deepEqual(model.get("strata"), ["sex"]);
+  assert.deepEqual(model.get("bins"), {});
+});
+
+test("Python writing strata redraws the zone (two-way sync)", () => {
+  const { model, root } = mount();
+  model.put("strata", ["insulin", "sex"]);
+  const zoneChips = [...root.querySelectorAll(".sg-zone .sg-chip")].map((c) => c.getAttribute("data-column"));
+  assert.deepEqual(zoneChips, ["insulin", "sex"]);
+});
+
+test("effects table: one row per stratum, overall last, data-value at full precision", () => {
+  const rows = [
+    row("sex=female", { estimate: 0.3300069833397466, ci_low: 0.2888152667556416 }),
+    row("sex=male", { estimate: 0.27, status: "ok" }),
+    row("overall", { estimate: 0.3048, n: 4000 }),
+  ];
+  const { root } = mount({ _result: result(rows, { modifiers: ["sex"] }) });
+  const trs = [...root.querySelectorAll(".sg-effects table tbody tr")];
+  assert.deepEqual(trs.map((t) => t.getAttribute("data-stratum")), ["sex=female", "sex=male", "overall"]);
+  const est = trs[0].querySelector('td[data-field="estimate"]');
+  assert.equal(Number(est.getAttribute("data-value")), 0.3300069833397466);
+  assert.equal(est.textContent, "0.330");
+  assert.equal(trs[2].querySelector('td[data-field="n"]').textContent, "4,000");
+  for (const f of ["n", "n_exposed", "n_unexposed", "mean_exposed", "mean_unexposed", "estimate", "ci_low", "ci_high", "status"]) {
+    assert.ok(trs[0].querySelector(`td[data-field="${f}"]`), `cell ${f}`);
+  }
+});
+
+test("a not-estimable row shows its reason instead of a point", () => {
+  const rows = [
+    row("a", { estimate: null, ci_low: null, ci_high: null, status: "no exposed rows in this stratum" }),
+    row("overall"),
+  ];
+  const { root } = mount({ _result: result(rows, { modifiers: ["g"] }) });
+  const g = root.querySelector('svg.sg-forest g.sg-row[data-stratum="a"]');
+  assert.equal(g.querySelector(".sg-point"), null);
+  assert.equal(g.querySelector("text.sg-reason").textContent, "no exposed rows in this stratum");
+  assert.equal(root.querySelector('tr[data-stratum="a"] td[data-field="estimate"]').getAttribute("data-value"), "");
+});
+
+test("plot geometry: difference axis is linear with the null line at 0", () => {
+  const rows = [row("a", { estimate: 0.2, ci_low: 0.1, ci_high: 0.3 }), row("overall", { estimate: -0.1, ci_low: -0.2, ci_high: 0 })];
+  const ax = axis(rows, false, 0, 10, 290);
+  const span = 0.3 - -0.2;
+  assert.ok(Math.abs(ax.domain[0] - (-0.2 - 0.05 * span)) < 1e-12);
+  assert.ok(Math.abs(ax.domain[1] - (0.3 + 0.05 * span)) < 1e-12);
+  // linear: equal steps in value are equal steps in pixels
+  assert.ok(Math.abs(ax.x(0.1) - ax.x(0) - (ax.x(0.2) - ax.x(0.1))) < 1e-9);
+  const { root } = mount({ _result: result(rows) });
+  const svg = root.querySelector("svg.sg-forest");
+  const nullLine = svg.querySelector("line.sg-null");
+  const w = Number(svg.getAttribute("width"));
+  const expected = axis(rows, false, 0, 10, w - 10).x(0);
+  assert.ok(Math.abs(Number(nullLine.getAttribute("x1")) - expected) < 1e-9);
+  // each row's point sits at its estimate, rows are ROW_H apart below the header
+  const gs = svg.querySelectorAll("g.sg-row");
+  assert.equal(gs.length, 2);
+  const c = gs[0].querySelector("circle.sg-point");
+  assert.ok(Math.abs(Number(c.getAttribute("cx")) - axis(rows, false, 0, 10, w - 10).x(0.2)) < 1e-9);
+  assert.equal(Number(c.getAttribute("cy")), HEAD_H + ROW_H / 2);
+  const ci = gs[0].querySelector("line.sg-ci");
+  assert.ok(Number(ci.getAttribute("x1")) < Number(ci.getAttribute("x2")));
+});
+
+test("plot geometry: ratio axis is logarithmic with the null line at 1", () => {
+  const rows = [row("a", { estimate: 2, ci_low: 1, ci_high: 4 }), row("overall", { estimate: 0.5, ci_low: 0.25, ci_high: 1 })];
+  const ax = axis(rows, true, 1, 0, 100);
+  // log: doubling is the same distance everywhere, and 1 sits midway between 0.5 and 2
+  assert.ok(Math.abs(ax.x(2) - ax.x(1) - (ax.x(4) - ax.x(2))) < 1e-9);
+  assert.ok(Math.abs(ax.x(1) - (ax.x(0.5) + ax.x(2)) / 2) < 1e-9);
+  assert.ok(ax.ticks.includes(1) && ax.ticks.includes(2) && ax.ticks.includes(0.5));
+  const { root } = mount({ _result: result(rows, { measure: "rr", measure_name: "risk ratio", ratio: true, null: 1 }) });
+  const svg = root.querySelector("svg.sg-forest");
+  const w = Number(svg.getAttribute("width"));
+  const x1 = Number(svg.querySelector("line.sg-null").getAttribute("x1"));
+  assert.ok(Math.abs(x1 - axis(rows, true, 1, 10, w - 10).x(1)) < 1e-9);
+  assert.match(svg.querySelector(".sg-axis-title").textContent, /log scale/);
+});
+
+test("niceTicks uses steps of 1, 2 or 5", () => {
+  assert.deepEqual(niceTicks(0, 1), [0, 0.2, 0.4, 0.6, 0.8, 1]);
+  assert.deepEqual(niceTicks(-0.23, 0.41), [-0.2, 0, 0.2, 0.4]);
+  assert.deepEqual(niceTicks(-0.05, 0.42), [0, 0.1, 0.2, 0.3, 0.4]);
+  assert.deepEqual(niceTicks(1, 1), []);
+});
+
+test("escaping: a hostile column name and level appear as text, no element is created", () => {
+  const variables = [{ name: HOSTILE, tag: "2 levels", ok: true, reason: "", kind: "levels" }];
+  const label = `${HOSTILE}=<b>x</b>`;
+  const rows = [row(label), row("overall")];
+  const { root, model } = mount({
+    _variables: variables,
+    strata: [HOSTILE],
+    _result: result(rows, {
+      modifiers: [HOSTILE],
+      notes: [`note ${HOSTILE}`],
+      diagnostics: [{ stratum: label, check: "positivity", arm: "exposed", value: 0.1, warning: HOSTILE }],
+      response_types: [{ stratum: label, type: "causal", lower: 0.1, upper: 0.2 }],
+    }),
+    _status: { state: "error", message: HOSTILE, progress: 0 },
+  });
+  assert.equal(root.querySelectorAll("img").length, 0);
+  assert.equal(root.querySelectorAll("b").length, 0);
+  const chip = root.querySelector(".sg-variables .sg-chip");
+  assert.equal(chip.getAttribute("data-column"), HOSTILE);
+  assert.equal(chip.querySelector(".sg-name").textContent, HOSTILE);
+  assert.equal(root.querySelector(".sg-zone .sg-chip .sg-name").textContent, HOSTILE);
+  assert.equal(root.querySelector('.sg-effects tbody tr td[data-field="stratum"]').textContent, label);
+  assert.equal(root.querySelector(".sg-message").textContent, HOSTILE);
+  assert.ok(root.textContent.includes(`note ${HOSTILE}`));
+  // querying by the attribute value finds the row: the label was stored verbatim
+  const tr = [...root.querySelectorAll(".sg-effects tbody tr")].find((t) => t.getAttribute("data-stratum") === label);
+  assert.ok(tr);
+  model.put("_result", result([row(HOSTILE)], { recipe: HOSTILE }));
+  assert.equal(root.querySelector("pre.sg-code").textContent, HOSTILE);
+  assert.equal(root.querySelectorAll("img").length, 0);
+});
+
+test("controls write their traits; n_boot only with bootstrap", () => {
+  const { model, root } = mount();
+  const measure = root.querySelector('select[data-control="measure"]');
+  assert.deepEqual([...measure.options].map((o) => o.value), ["rd", "rr", "or"]);
+  measure.value = "rr";
+  measure.dispatchEvent(new Event("change"));
+  assert.equal(model.get("measure"), "rr");
+  const method = root.querySelector('select[data-control="method"]');
+  assert.equal(method.value, "crude");
+  method.value = "aipw";
+  method.dispatchEvent(new Event("change"));
+  assert.equal(model.get("method"), "aipw");
+  const level = root.querySelector('[data-control="level"]');
+  level.value = "0.9";
+  level.dispatchEvent(new Event("change"));
+  assert.equal(model.get("level"), 0.9);
+  const nBoot = root.querySelector('[data-control="n_boot"]');
+  assert.equal(nBoot.disabled, true);
+  const interval = root.querySelector('select[data-control="interval"]');
+  interval.value = "bootstrap";
+  interval.dispatchEvent(new Event("change"));
+  assert.equal(model.get("interval"), "bootstrap");
+  assert.equal(nBoot.disabled, false);
+  nBoot.value = "200";
+  nBoot.dispatchEvent(new Event("change"));
+  assert.equal(model.get("n_boot"), 200);
+});
+
+test("a numeric outcome offers the mean difference only", () => {
+  const { root } = mount({ _result: result([row("overall")], { spec: { method: "crude", measure: "md" }, measure: "md" }) });
+  const measure = root.querySelector('select[data-control="measure"]');
+  assert.deepEqual([...measure.options].map((o) => o.value), ["md"]);
+});
+
+test("status: error dims the last result and shows the message; running shows progress", () => {
+  const { model, root } = mount({ _result: result([row("a"), row("overall")], { modifiers: ["g"] }) });
+  model.put("_status", { state: "error", message: "Modifier 'age' has too few values", progress: 0 });
+  assert.ok(root.classList.contains("sg-stale"));
+  assert.equal(root.querySelector(".sg-message").textContent, "Modifier 'age' has too few values");
+  assert.equal(root.querySelectorAll(".sg-effects tbody tr").length, 2, "last result stays");
+  model.put("_status", { state: "running", message: "", progress: 0.4 });
+  assert.ok(!root.classList.contains("sg-stale"));
+  const bar = root.querySelector("progress.sg-progress");
+  assert.equal(bar.hidden, false);
+  assert.equal(bar.value, 0.4);
+  model.put("_status", { state: "idle", message: "", progress: 1 });
+  assert.equal(bar.hidden, true);
+});
+
+test("views switch; types, checks and code show their tables", () => {
+  const types = [];
+  for (const t of ["doomed", "causal", "preventive", "immune"]) types.push({ stratum: "overall", type: t, lower: 0.25, upper: 0.25 });
+  const { root } = mount({
+    _result: result([row("overall")], {
+      response_types: types,
+      diagnostics: [{ stratum: "overall", check: "positivity", arm: "exposed", value: 0.01, warning: "few exposed" }],
+      heterogeneity: [{ test: "Cochran Q", statistic: 3.2, df: 1, p_value: 0.07, note: "" }],
+      modifiers: ["sex"],
+      recipe: "import stratagem as sg\nanalysis = sg.analyze(df)\n",
+    }),
+  });
+  const pane = (k) => root.querySelector(`[data-pane="${k}"]`);
+  assert.equal(pane("effects").hidden, false);
+  assert.equal(pane("types").hidden, true);
+  root.querySelector('[data-view="types"]').click();
+  assert.equal(pane("types").hidden, false);
+  assert.equal(pane("effects").hidden, true);
+  assert.equal(root.querySelector('.sg-types td[data-type="causal"]').getAttribute("data-value"), "0.25");
+  root.querySelector('[data-view="checks"]').click();
+  assert.ok(root.querySelector(".sg-checks tr.sg-warning"));
+  assert.match(root.querySelector(".sg-checks").textContent, /few exposed/);
+  root.querySelector('[data-view="code"]').click();
+  assert.match(root.querySelector("pre.sg-code").textContent, /sg\.analyze/);
+  assert.ok(root.querySelector(".sg-copy"));
+  assert.match(root.querySelector(".sg-het").textContent, /Cochran Q: 3\.20 on 1 df, p = 0\.070/);
+});
+
+test("every model.on is paired with a model.off in cleanup", () => {
+  const { model, cleanup } = mount();
+  assert.ok(model.log.on.length >= 5);
+  cleanup();
+  assert.equal(model.handlerCount(), 0);
+  const key = ([e, cb]) => [e, cb];
+  for (const pair of model.log.on) {
+    assert.ok(model.log.off.some((o) => o[0] === key(pair)[0] && o[1] === key(pair)[1]), `off for ${pair[0]}`);
+  }
+});
