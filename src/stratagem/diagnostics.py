@@ -1,0 +1,235 @@
+"""Checks of positivity, weights and balance per stratum: the table behind ``Analysis.diagnostics``.
+
+One long table with the columns of :data:`stratagem.results.DIAGNOSTIC_COLUMNS`
+(``stratum, check, arm, value, warning``), rows for every stratum and then ``overall``:
+
+=============================== ======================= =============================================
+check                           arm                     value
+=============================== ======================= =============================================
+``n``                           exposed / unexposed     rows in the arm (sum of frequencies)
+``propensity min``, ``max``     exposed / unexposed     smallest / largest fitted propensity
+``outside common support``      all                     share of rows whose propensity lies outside
+                                                        the overlap of the two arms' ranges
+``largest weight``              exposed / unexposed     largest inverse probability weight
+``effective sample size``       exposed / unexposed     Kish (1965): (sum w)^2 / sum w^2
+``smd before: <term>``          exposed vs unexposed    standardized mean difference, unweighted
+``smd after: <term>``           exposed vs unexposed    the same with the inverse probability weights
+=============================== ======================= =============================================
+
+Propensity and weight rows appear when the estimator put per-row ``propensity`` and ``weights``
+arrays (n,) in ``GroupMeans.extra`` (IPW, AIPW). ``<term>`` is a numeric confounder's name, or
+``name=level`` for each level of a non-numeric confounder (indicator coding).
+
+Standardized mean difference (Austin 2009, "Balance diagnostics for comparing the distribution of
+baseline covariates between treatment groups in propensity-score matched samples", Stat Med
+28:3083-3107): ``(mean_1 - mean_0) / sqrt((s_1^2 + s_0^2) / 2)`` with ``s^2 = p (1 - p)`` for a 0/1
+term and the sample variance (n - 1 divisor) otherwise. After weighting, means and variances are
+weighted by frequency x IP weight (Austin & Stuart 2015, Stat Med 34:3661), the variance scaled so it
+reduces to the sample variance when the weights are constant.
+
+Warnings (text in ``warning``, empty when fine): an arm with fewer than 10 rows; propensities below
+0.01 or above 0.99 (positivity doubtful); an effective sample size under 10% of the arm's rows; an
+|SMD| above 0.1 after weighting (common practice, e.g. Austin 2009).
+
+Everything is computed with ``np.bincount`` over (group, arm) codes and one pandas group-by for
+minima and maxima: no per-row Python, so it runs on every :func:`stratagem.analyze` call.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+import pandas as pd
+
+from .estimate.base import GroupMeans
+from .frame import Prepared
+from .results import DIAGNOSTIC_COLUMNS
+from .spec import Spec
+
+__all__ = ["diagnostics_fields", "diagnostics_table", "effective_sample_size", "smd",
+           "MIN_ROWS", "PROPENSITY_LIMITS", "SMD_LIMIT", "ESS_SHARE"]
+
+MIN_ROWS = 10  # an arm with fewer rows than this is flagged
+PROPENSITY_LIMITS = (0.01, 0.99)  # propensities beyond these suggest a positivity problem
+SMD_LIMIT = 0.1  # |SMD| after weighting above this is flagged (common practice)
+ESS_SHARE = 0.10  # ESS below this share of an arm's rows is flagged
+ARMS = ("unexposed", "exposed")  # arm index 0, 1
+BOTH = "exposed vs unexposed"
+
+
+def effective_sample_size(weights: np.ndarray, freq: np.ndarray | None = None) -> float:
+    """Kish's effective sample size ``(sum f w)^2 / sum f w^2`` (Kish 1965, *Survey Sampling*).
+
+    ``freq`` are row frequencies (each row stands for that many individuals with weight ``w``).
+    """
+    w = np.asarray(weights, dtype=float)
+    f = np.ones_like(w) if freq is None else np.asarray(freq, dtype=float)
+    s2 = np.sum(f * w * w)
+    return float(np.sum(f * w) ** 2 / s2) if s2 > 0 else float("nan")
+
+
+def smd(x, arm, weights=None, freq=None, *, binary: bool | None = None) -> float:
+    """Standardized mean difference of ``x`` between ``arm == 1`` and ``arm == 0`` (Austin 2009).
+
+    ``weights`` are IP weights, ``freq`` row frequencies. A plain, loop-free-of-groups reference of
+    what :func:`diagnostics_table` computes for every group at once.
+    """
+    x, arm = np.asarray(x, dtype=float), np.asarray(arm, dtype=float)
+    v = np.ones_like(x) if weights is None else np.asarray(weights, dtype=float)
+    f = np.ones_like(x) if freq is None else np.asarray(freq, dtype=float)
+    binary = bool(np.isin(x, (0.0, 1.0)).all()) if binary is None else binary
+    stats = []
+    for j in (1.0, 0.0):
+        sel = arm == j
+        ww, xx, n = (f * v)[sel], x[sel], f[sel].sum()
+        m = np.sum(ww * xx) / np.sum(ww)
+        var = m * (1 - m) if binary else np.sum(ww * (xx - m) ** 2) / np.sum(ww) * n / (n - 1)
+        stats.append((m, var))
+    (m1, v1), (m0, v0) = stats
+    return float((m1 - m0) / np.sqrt((v1 + v0) / 2))
+
+
+# -- vectorised pieces ------------------------------------------------------------------------------
+class _Groups:
+    """Sums per (group, arm) with G = K strata + overall; results have shape (G, 2)."""
+
+    def __init__(self, prep: Prepared, keep: np.ndarray):
+        self.k = prep.n_strata
+        self.code = prep.stratum.astype(np.int64) * 2 + (prep.a > 0).astype(np.int64)
+        self.keep = keep
+
+    def sums(self, values: np.ndarray) -> np.ndarray:
+        per = np.bincount(self.code, weights=values, minlength=2 * self.k).reshape(self.k, 2)
+        return np.vstack([per, per.sum(axis=0, keepdims=True)])
+
+    def extreme(self, values: np.ndarray, how: str) -> np.ndarray:
+        """Minimum or maximum of ``values`` per (group, arm) over kept rows; NaN where empty."""
+        s = pd.Series(values[self.keep]).groupby(self.code[self.keep])
+        got = s.min() if how == "min" else s.max()
+        out = np.full(2 * self.k, np.nan)
+        out[got.index.to_numpy()] = got.to_numpy()
+        per = out.reshape(self.k, 2)
+        with np.errstate(all="ignore"):
+            total = np.nanmin(per, axis=0) if how == "min" else np.nanmax(per, axis=0)
+        return np.vstack([per, total[None, :]])
+
+
+def _terms(confounders: pd.DataFrame):
+    """Yield (label, values float (n,), is_binary) for every confounder term (indicator-coded)."""
+    for name in confounders.columns:
+        s = confounders[name]
+        if pd.api.types.is_bool_dtype(s):
+            yield str(name), s.to_numpy(dtype=float), True
+        elif pd.api.types.is_numeric_dtype(s):
+            x = s.to_numpy(dtype=float)
+            yield str(name), x, bool(np.isin(x, (0.0, 1.0)).all())
+        else:
+            codes, levels = pd.factorize(s, sort=True)
+            if len(levels) < 2:
+                continue
+            for j, level in enumerate(levels):
+                yield f"{name}={level}", (codes == j).astype(float), True
+
+
+def _smd_groups(groups: _Groups, x: np.ndarray, w: np.ndarray, binary: bool, n_rows: np.ndarray):
+    """SMD per group (G,) of term ``x`` with row weights ``w``; ``n_rows`` (G, 2) rows per arm."""
+    centre = np.average(x, weights=w) if w.sum() > 0 else 0.0
+    xc = x - centre  # centring limits rounding in the one-pass variance
+    sw = groups.sums(w)
+    sx = groups.sums(w * xc)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        m = sx / sw
+        if binary:
+            p = m + centre
+            var = p * (1 - p)
+        else:
+            ss = groups.sums(w * xc * xc) - sx * m
+            var = np.maximum(ss, 0.0) / sw * n_rows / (n_rows - 1)
+        d = (m[:, 1] - m[:, 0]) / np.sqrt((var[:, 1] + var[:, 0]) / 2)
+    return np.where(np.isfinite(d), d, np.nan)
+
+
+def diagnostics_table(prep: Prepared, gm: GroupMeans) -> pd.DataFrame:
+    """The long table of checks (see the module docstring) for one estimate."""
+    names = list(prep.labels["stratum"]) + ["overall"]
+    f = prep.w
+    groups = _Groups(prep, f > 0)
+    n_rows = groups.sums(f)  # (G, 2): unexposed, exposed
+    frames = []
+
+    def add(check, arm, value, warning):
+        frames.append(pd.DataFrame({"stratum": names, "check": check, "arm": arm,
+                                    "value": np.asarray(value, dtype=float), "warning": warning}))
+
+    for j in (1, 0):
+        warn = np.where(n_rows[:, j] < MIN_ROWS, f"fewer than {MIN_ROWS} rows in the {ARMS[j]} arm", "")
+        add("n", ARMS[j], n_rows[:, j], warn)
+
+    ps = gm.extra.get("propensity")
+    ipw = gm.extra.get("weights")
+    if ps is not None:
+        ps = np.asarray(ps, dtype=float)
+        lo, hi = groups.extreme(ps, "min"), groups.extreme(ps, "max")
+        for j in (1, 0):
+            add("propensity min", ARMS[j], lo[:, j],
+                np.where(lo[:, j] < PROPENSITY_LIMITS[0],
+                         f"propensities below {PROPENSITY_LIMITS[0]} in the {ARMS[j]} arm: "
+                         "positivity doubtful", ""))
+            add("propensity max", ARMS[j], hi[:, j],
+                np.where(hi[:, j] > PROPENSITY_LIMITS[1],
+                         f"propensities above {PROPENSITY_LIMITS[1]} in the {ARMS[j]} arm: "
+                         "positivity doubtful", ""))
+        low = np.fmax(lo[:, 0], lo[:, 1])  # common support: overlap of the two arms' ranges
+        high = np.fmin(hi[:, 0], hi[:, 1])
+        row_low, row_high = low[prep.stratum], high[prep.stratum]
+        out_rows = f * ((ps < row_low) | (ps > row_high))
+        out_all = f * ((ps < low[-1]) | (ps > high[-1]))
+        per = np.bincount(prep.stratum, weights=out_rows, minlength=prep.n_strata)
+        share = np.append(per, out_all.sum()) / n_rows.sum(axis=1)
+        add("outside common support", "all", share, "")
+
+    if ipw is not None:
+        v = np.asarray(ipw, dtype=float)
+        top = groups.extreme(v, "max")
+        s1, s2 = groups.sums(f * v), groups.sums(f * v * v)
+        with np.errstate(divide="ignore", invalid="ignore"):
+            ess = s1 * s1 / s2
+        for j in (1, 0):
+            add("largest weight", ARMS[j], top[:, j], "")
+        for j in (1, 0):
+            add("effective sample size", ARMS[j], ess[:, j],
+                np.where(ess[:, j] < ESS_SHARE * n_rows[:, j],
+                         f"effective sample size under {ESS_SHARE:.0%} of the {ARMS[j]} arm's rows: "
+                         "a few rows carry most of the weight", ""))
+
+    for label, x, binary in _terms(prep.confounders):
+        before = _smd_groups(groups, x, f, binary, n_rows)
+        add(f"smd before: {label}", BOTH, before, "")
+        if ipw is not None:
+            after = _smd_groups(groups, x, f * v, binary, n_rows)
+            add(f"smd after: {label}", BOTH, after,
+                np.where(np.abs(after) > SMD_LIMIT,
+                         f"imbalance in {label} remains after weighting (|SMD| > {SMD_LIMIT})", ""))
+
+    table = pd.concat(frames, ignore_index=True)
+    order = {name: i for i, name in enumerate(names)}
+    table["_g"] = table["stratum"].map(order)
+    table = table.sort_values("_g", kind="stable").drop(columns="_g").reset_index(drop=True)
+    return table[DIAGNOSTIC_COLUMNS]
+
+
+def diagnostics_fields(prep: Prepared, spec: Spec, gm: GroupMeans, fields: dict) -> dict:
+    """Post-estimation step of :func:`stratagem.analyze`: the ``diagnostics`` table and a note.
+
+    Returns ``{"diagnostics": DataFrame}``, plus ``"notes"`` with one summary line appended when
+    any check warns.
+    """
+    table = diagnostics_table(prep, gm)
+    out = {"diagnostics": table}
+    warned = table[table["warning"] != ""]
+    if len(warned):
+        strata = warned["stratum"].nunique()
+        out["notes"] = tuple(fields.get("notes", ())) + (
+            f"Checks: {len(warned)} warning(s) in {strata} group(s) "
+            "(positivity, weights, balance or small arms); see Analysis.diagnostics.",
+        )
+    return out
