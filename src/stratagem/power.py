@@ -97,7 +97,7 @@ def _check(**values) -> None:
             continue
         check, rule = RULES[name]
         if not check(value):
-            shown = list(value) if isinstance(value, np.ndarray) else value
+            shown = value.tolist() if isinstance(value, np.ndarray) else value
             bad = _first_bad(value, check)
             where = f" ({name}[{bad[0]}] = {bad[1]!r})" if bad else ""
             raise SpecError(f"The {name!r} parameter must be {rule}; got {shown!r}{where}.")
@@ -107,7 +107,7 @@ def _first_bad(value, check):
     if isinstance(value, (Sequence, np.ndarray)) and not isinstance(value, str):
         for i, x in enumerate(value):
             if not check(x):
-                return i, x
+                return i, (x.item() if isinstance(x, np.generic) else x)
     return None
 
 
@@ -174,7 +174,7 @@ def _design(effects, risks_unexposed, n, sizes, shares, exposed_share, scale, sd
             i = int(np.argmax(eff <= 0))
             raise SpecError(
                 f"On the multiplicative scale effects are odds ratios and must be > 0; "
-                f"effects[{i}] = {eff[i]!r}."
+                f"effects[{i}] = {float(eff[i])!r}."
             )
         odds = p0 / (1 - p0) * eff
         p1 = odds / (1 + odds)

@@ -182,9 +182,10 @@ def transport(
     Examples
     --------
     >>> import stratagem as sg
+    >>> from stratagem.transport import transport
     >>> a = sg.analyze(sg.demo_data(), exposure="visited", outcome="on_target",
     ...                strata=("lives_alone",), method="crude")
-    >>> r = sg.transport(a, {"no": 0.5, "yes": 0.5})
+    >>> r = transport(a, {"no": 0.5, "yes": 0.5})
     >>> r.to_frame()["population"].tolist()
     ['study', 'target']
     """
