@@ -1,0 +1,184 @@
+"""Confounder design matrices, built directly from the table (no formula strings, no eval).
+
+Coding rules (common practice, e.g. Hosmer, Lemeshow & Sturdivant, *Applied Logistic Regression*,
+3rd ed., 2013, ch. 3 on design variables):
+
+* numeric columns enter as they are (one column each, original scale);
+* bool, categorical and other non-numeric columns get indicator (dummy) coding, one column per level
+  except the first level, which is the reference (categories in their declared order for a
+  ``Categorical``; sorted levels otherwise; ``False`` first for bools);
+* columns that are constant are dropped, with a note;
+* exact collinearity is found from the weighted correlation (Gram) matrix of the centred columns,
+  scanning columns in order: a column whose variance left after regressing it on the columns kept
+  before it (and an intercept) is below ``1e-9`` of its own variance is redundant and dropped, with a
+  note. The design is never rank deficient afterwards, so no fit crashes on it.
+
+The estimators standardise the kept columns (weighted mean 0, standard deviation 1) before fitting,
+for numerical conditioning only: fitted values, and so every reported mean, are the same as on the
+original scale.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+
+import numpy as np
+import pandas as pd
+
+__all__ = ["Design", "confounder_design", "independent_columns"]
+
+RANK_TOL = 1e-9  # a column whose unexplained share of variance is below this is redundant
+
+
+@dataclass(frozen=True)
+class Design:
+    """A confounder design matrix without an intercept.
+
+    Attributes
+    ----------
+    matrix : ndarray, shape (n, p)
+        Float64 design columns, original scale, rows in the order asked for.
+    names : tuple of str
+        One name per column: the column name for numeric columns, ``"name=level"`` for indicators.
+    sources : tuple of str
+        The table column each design column came from.
+    notes : tuple of str
+        Columns dropped (constant or collinear) and why.
+    """
+
+    matrix: np.ndarray
+    names: tuple
+    sources: tuple
+    notes: tuple = field(default=())
+
+
+def _is_numeric(s: pd.Series) -> bool:
+    return pd.api.types.is_numeric_dtype(s) and not pd.api.types.is_bool_dtype(s)
+
+
+def _levels(s: pd.Series) -> list:
+    if isinstance(s.dtype, pd.CategoricalDtype):
+        present = set(pd.unique(s.dropna()))
+        return [c for c in s.cat.categories if c in present]
+    uniq = list(pd.unique(s.dropna()))
+    try:
+        return sorted(uniq)
+    except TypeError:
+        return sorted(uniq, key=str)
+
+
+def _plan(frame: pd.DataFrame) -> tuple[list, list]:
+    """Which design columns each table column gives: (name, source, kind, level) and notes."""
+    plan, notes = [], []
+    for col in frame.columns:
+        s = frame[col]
+        if _is_numeric(s):
+            x = s.to_numpy(dtype=float)
+            if x.size == 0 or np.all(x == x[0]):
+                notes.append(f"Confounder {col!r} is constant and was dropped.")
+                continue
+            plan.append((str(col), col, "numeric", None))
+            continue
+        levels = _levels(s)
+        if len(levels) < 2:
+            notes.append(f"Confounder {col!r} has a single level and was dropped.")
+            continue
+        for level in levels[1:]:  # first level is the reference
+            plan.append((f"{col}={level}", col, "level", level))
+    return plan, notes
+
+
+def _fill(frame: pd.DataFrame, plan: list, order: np.ndarray | None) -> np.ndarray:
+    n = len(frame)
+    out = np.empty((n, len(plan)))
+    cache: dict = {}
+    for j, (_, col, kind, level) in enumerate(plan):
+        if col not in cache:
+            v = frame[col].to_numpy(dtype=float) if kind == "numeric" else frame[col].to_numpy()
+            cache = {col: v if order is None else v[order]}
+        v = cache[col]
+        if kind == "numeric":
+            out[:, j] = v
+        else:
+            out[:, j] = v == level
+    return out
+
+
+def independent_columns(x: np.ndarray, w: np.ndarray | None = None, tol: float = RANK_TOL):
+    """Which columns of ``x`` (n, p) to keep so that ``[1, x[:, keep]]`` has full column rank.
+
+    Columns are scanned in order; a column is kept when the share of its weighted variance not
+    explained by an intercept and the columns kept before it exceeds ``tol``.
+
+    Returns
+    -------
+    keep : bool ndarray (p,)
+    reason : list of str
+        For each column, ``""`` (kept), ``"constant"`` or ``"collinear"``.
+    """
+    n, p = x.shape
+    w = np.ones(n) if w is None else np.asarray(w, dtype=float)
+    total = w.sum()
+    keep = np.zeros(p, dtype=bool)
+    reason = [""] * p
+    if p == 0 or total <= 0:
+        return keep, ["constant"] * p
+    mean = (w @ x) / total
+    xc = x - mean
+    gram = (xc * w[:, None]).T @ xc / total  # weighted covariance matrix; p is small
+    scale = np.sqrt(np.maximum(np.diag(gram), 0.0))
+    top = max(float(scale.max()), 1e-300)
+    for j in range(p):
+        if scale[j] <= 1e-12 * top or scale[j] == 0.0:
+            reason[j] = "constant"
+            continue
+        kept = np.flatnonzero(keep)
+        left = gram[j, j]
+        if kept.size:
+            g_kk = gram[np.ix_(kept, kept)]
+            g_kj = gram[kept, j]
+            left = gram[j, j] - g_kj @ np.linalg.solve(g_kk, g_kj)
+        if left <= tol * gram[j, j]:
+            reason[j] = "collinear"
+            continue
+        keep[j] = True
+    return keep, reason
+
+
+def confounder_design(
+    frame: pd.DataFrame, *, order: np.ndarray | None = None, w: np.ndarray | None = None
+) -> Design:
+    """Design matrix of the confounders in ``frame`` (see the module docstring for the coding).
+
+    Parameters
+    ----------
+    frame : DataFrame
+        The confounder columns (``Prepared.confounders``); only read.
+    order : int ndarray, optional
+        Row order of the result (e.g. rows sorted by stratum); default the frame's order.
+    w : ndarray, optional
+        Frequency weights (in the frame's row order) used to judge constancy and collinearity.
+
+    Returns
+    -------
+    Design
+    """
+    plan, notes = _plan(frame)
+    x = _fill(frame, plan, order)
+    if x.shape[1] == 0:
+        return Design(x, (), (), tuple(notes))
+    ww = None if w is None else (np.asarray(w, dtype=float) if order is None else np.asarray(w)[order])
+    keep, reason = independent_columns(x, ww)
+    if not keep.all():
+        for j in np.flatnonzero(~keep):
+            name = plan[j][0]
+            if reason[j] == "constant":
+                notes.append(f"Confounder column {name!r} is constant and was dropped.")
+            else:
+                notes.append(
+                    f"Confounder column {name!r} is an exact linear combination of other confounder "
+                    "columns (collinear) and was dropped; the adjustment is unchanged."
+                )
+        x = np.ascontiguousarray(x[:, keep])
+        plan = [p for p, k in zip(plan, keep) if k]
+    return Design(x, tuple(p[0] for p in plan), tuple(p[1] for p in plan), tuple(notes))
