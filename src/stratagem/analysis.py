@@ -16,7 +16,7 @@ import pandas as pd
 from . import measures
 from .estimate import get_estimator
 from .estimate.base import OK, GroupMeans
-from .estimate.bootstrap import bootstrap_means
+from .estimate.bootstrap import bootstrap_replicates
 from .frame import Prepared, prepare
 from .results import OVERALL_FIELDS, STRATA_COLUMNS, Analysis
 from .spec import Spec
@@ -85,10 +85,11 @@ def analyze(
     prep, spec = prepare(data, spec)
     estimator = get_estimator(spec.method)
     gm = estimator(prep, spec)
-    replicates = None
+    replicates = theta_b = None
     if spec.interval == "bootstrap" and spec.method != "exact":
-        replicates = bootstrap_means(estimator, prep, spec, progress=progress)
-    table = _effects_table(prep, spec, gm, replicates)
+        m1_b, m0_b, theta_b = bootstrap_replicates(estimator, prep, spec, progress=progress)
+        replicates = (m1_b, m0_b)
+    table = _effects_table(prep, spec, gm, replicates, theta_b)
     strata = table.iloc[:-1].reset_index(drop=True) if spec.strata else table.iloc[0:0]
     overall = table.iloc[-1][OVERALL_FIELDS].rename("overall")
     notes = list(prep.notes) + list(gm.notes)
@@ -99,7 +100,7 @@ def analyze(
         notes=tuple(notes),
         n_input=prep.n_input,
         n_dropped=prep.n_dropped,
-        extra={"replicates": replicates, "bin_edges": dict(prep.bin_edges),
+        extra={"replicates": replicates, "replicate_theta": theta_b, "bin_edges": dict(prep.bin_edges),
                "covariance": {"v11": gm.v11, "v00": gm.v00, "v10": gm.v10}, **gm.extra},
     )
     if "response_types" in gm.extra:
@@ -111,7 +112,7 @@ def analyze(
     return Analysis(**result)
 
 
-def _effects_table(prep: Prepared, spec: Spec, gm: GroupMeans, replicates) -> pd.DataFrame:
+def _effects_table(prep: Prepared, spec: Spec, gm: GroupMeans, replicates, theta_b=None) -> pd.DataFrame:
     """One row per stratum plus the overall row, with the columns of STRATA_COLUMNS."""
     if gm.theta is not None:
         theta, se = gm.theta, gm.se
@@ -119,7 +120,8 @@ def _effects_table(prep: Prepared, spec: Spec, gm: GroupMeans, replicates) -> pd
         theta, se = measures.on_analysis_scale(spec.measure, gm.m1, gm.m0, gm.v11, gm.v00, gm.v10)
     status = list(gm.status)
     if replicates is not None:
-        theta_b, _ = measures.on_analysis_scale(spec.measure, *replicates, 0.0, 0.0, 0.0)
+        if theta_b is None:  # estimators that give theta directly (Mantel-Haenszel) return its replicates
+            theta_b, _ = measures.on_analysis_scale(spec.measure, *replicates, 0.0, 0.0, 0.0)
         est, lo, hi, p, se = _percentile(spec, theta, theta_b)
     else:
         est, lo, hi, p = measures.wald(spec.measure, theta, se, spec.level)

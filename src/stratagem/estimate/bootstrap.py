@@ -8,6 +8,9 @@ without one each row is one individual. Randomness comes only from ``numpy.rando
 
 An estimator may provide a vectorised ``boot(prep, spec, W) -> (m1, m0)`` taking a (B, n) matrix of
 row frequencies; otherwise each replicate re-runs the estimator with the replicate's frequencies.
+An estimator that estimates the measure directly (``GroupMeans.theta``, e.g. Mantel-Haenszel) may
+return ``(m1, m0, theta)`` from ``boot``; :func:`bootstrap_replicates` then also returns the
+replicates of ``theta`` (analysis scale), and the slow path collects ``gm.theta`` likewise.
 """
 
 from __future__ import annotations
@@ -19,7 +22,7 @@ import numpy as np
 from ..frame import Prepared
 from ..spec import Spec
 
-__all__ = ["replicate_weights", "bootstrap_means"]
+__all__ = ["replicate_weights", "bootstrap_means", "bootstrap_replicates"]
 
 CHUNK_CELLS = 20_000_000  # largest (B x n) block of weights held at once (160 MB of float64)
 
@@ -43,21 +46,38 @@ def bootstrap_means(estimator, prep: Prepared, spec: Spec, progress=None):
 
     ``progress``, if given, is called with the fraction done after every block (for progress bars).
     """
+    m1, m0, _ = bootstrap_replicates(estimator, prep, spec, progress=progress)
+    return m1, m0
+
+
+def bootstrap_replicates(estimator, prep: Prepared, spec: Spec, progress=None):
+    """Replicates ``(m1, m0, theta)`` per group, each (B, G); ``theta`` is None unless the estimator
+    estimates the measure directly (its ``boot`` returns three arrays, or it sets ``gm.theta``).
+    """
     fast = getattr(estimator, "boot", None)
-    m1s, m0s = [], []
+    m1s, m0s, thetas = [], [], []
     done = 0
     for W in replicate_weights(prep, spec):
+        theta = None
         if fast is not None:
-            m1, m0 = fast(prep, spec, W)
+            got = fast(prep, spec, W)
+            m1, m0 = got[0], got[1]
+            theta = got[2] if len(got) > 2 else None
         else:
             m1 = np.empty((W.shape[0], prep.n_strata + 1))
             m0 = np.empty_like(m1)
             for i, w in enumerate(W):
                 gm = estimator(replace(prep, w=w), spec)
                 m1[i], m0[i] = gm.m1, gm.m0
+                if gm.theta is not None:
+                    if theta is None:
+                        theta = np.full_like(m1, np.nan)
+                    theta[i] = gm.theta
         m1s.append(m1)
         m0s.append(m0)
+        thetas.append(theta)
         done += W.shape[0]
         if progress is not None:
             progress(done / spec.n_boot)
-    return np.vstack(m1s), np.vstack(m0s)
+    theta_all = None if any(t is None for t in thetas) else np.vstack(thetas)
+    return np.vstack(m1s), np.vstack(m0s), theta_all
