@@ -232,7 +232,7 @@ def _scale_row(prep, gm, ok_groups):
     found = [name for name, p in (("difference", p_rd), ("ratio", p_rr)) if p < ALPHA]
     verdict = {
         0: "no modification detected on either scale",
-        1: f"modification detected on the {found[0]} scale only",
+        1: f"modification detected on the {found[0] if found else ''} scale only",
         2: "modification detected on both scales",
     }[len(found)]
     note = (
