@@ -234,3 +234,19 @@ def test_render_prefers_the_static_snapshot(tmp_path):
 def test_render_missing_notebook_exits_2(tmp_path, capsys):
     assert cli.main(["render", str(tmp_path / "none.ipynb")]) == 2
     assert "does not exist" in capsys.readouterr().err
+
+
+def test_render_quickstart_shows_the_explorer_snapshot(tmp_path):
+    import nbformat
+
+    src = Path(cli.quickstart_source())
+    nb = nbformat.read(src, as_version=4)
+    snapshots = [o["data"]["text/html"] for c in nb.cells if c.cell_type == "code" for o in c.get("outputs", [])
+                 if "application/vnd.jupyter.widget-view+json" in o.get("data", {})]
+    if not snapshots:
+        pytest.skip("the quickstart has no stored widget output")
+    out = tmp_path / "q.html"
+    assert cli.main(["render", str(src), "-o", str(out), "-q"]) == 0
+    text = out.read_text(encoding="utf-8")
+    assert 'class="sg-snapshot"' in text
+    assert not re.search(r"<script[^>]+src=", text)

@@ -180,3 +180,67 @@ def test_analysis_to_html_method(crude, tmp_path):
     if not hasattr(sg.Analysis, "to_html"):
         pytest.skip("Analysis.to_html is not attached")
     assert crude.to_html() == to_html(crude)
+
+
+# -- journal tables: CSV and LaTeX ----------------------------------------------------------------
+def test_format_interval_and_p():
+    from stratagem.export import format_interval, format_p
+
+    assert format_interval(0.1234, -0.0456, 0.29) == "0.12 (-0.05 to 0.29)"
+    assert format_interval(2.0, float("nan"), 3.0, digits=1) == "2.0"
+    assert format_interval(float("nan"), 0, 1) == ""
+    assert format_p(0.04321) == "0.043"
+    assert format_p(0.0009) == "<0.001"
+    assert format_p(0.0009, digits=4) == "0.0009"
+    assert format_p(None) == ""
+
+
+def test_journal_table_matches_the_analysis(crude):
+    from stratagem.export import journal_table
+
+    t = journal_table(crude, digits=2)
+    effect = [c for c in t.columns if c.startswith("RD (95% CI)")]
+    assert effect == ["RD (95% CI)"]
+    assert len(t) == len(crude.strata) + 1
+    for i, row in crude.strata.iterrows():
+        assert t.loc[i, "RD (95% CI)"] == (
+            f"{row['estimate']:.2f} ({row['ci_low']:.2f} to {row['ci_high']:.2f})")
+        assert t.loc[i, "lives_alone"] == str(row["lives_alone"])
+        assert t.loc[i, "risk if exposed"] == f"{row['mean_exposed']:.2f}"
+    last = t.iloc[-1]
+    assert last["lives_alone"] == "Overall" and last["insulin"] == ""
+    assert last["n"] == f"{crude.overall['n']:,.0f}"
+
+
+def test_to_csv_numbers_round_trip(crude, tmp_path):
+    path = tmp_path / "t.csv"
+    text = crude.to_csv(path)
+    assert path.read_text(encoding="utf-8") == text
+    back = pd.read_csv(path, keep_default_na=False)
+    frame = crude.to_frame()
+    for col in ("n", "estimate", "se", "ci_low", "ci_high", "mean_exposed"):
+        np.testing.assert_allclose(back[col].astype(float), frame[col].astype(float), rtol=1e-12)
+    assert list(back["stratum"]) == list(frame["stratum"])
+    journal = crude.to_csv(style="journal")
+    assert "(" in journal and " to " in journal
+    with pytest.raises(sg.StratagemError, match="'style'.*'numbers', 'journal'"):
+        crude.to_csv(style="fancy")
+
+
+def test_to_latex_escapes_and_uses_booktabs(tmp_path):
+    df = sg.demo_data(n=800).rename(columns={"lives_alone": "lives_alone&50%"})
+    df["lives_alone&50%"] = df["lives_alone&50%"].astype(str).map({"yes": "y_es#1", "no": "n{o}"})
+    a = sg.analyze(df, exposure="visited", outcome="on_target", strata=("lives_alone&50%",),
+                   method="crude", measure="rr")
+    tex = a.to_latex(label="tab:visits", path=tmp_path / "t.tex")
+    assert (tmp_path / "t.tex").read_text(encoding="utf-8") == tex
+    assert r"\toprule" in tex and r"\midrule" in tex and r"\bottomrule" in tex
+    assert r"lives\_alone\&50\%" in tex
+    assert r"y\_es\#1" in tex and r"n\{o\}" in tex
+    assert r"\label{tab:visits}" in tex
+    assert "RR (95\\% CI)" in tex
+    o = a.overall
+    assert f"{o['estimate']:.2f} ({o['ci_low']:.2f} to {o['ci_high']:.2f})" in tex
+    assert "<0.001" not in tex  # '<' is escaped for LaTeX
+    body = tex.split(r"\midrule")[1]
+    assert "_" not in body.replace(r"\_", "")

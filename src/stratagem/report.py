@@ -210,7 +210,7 @@ def interval_svg(analysis: Analysis, *, width: int = 760, row_height: int = 24, 
         f'<svg xmlns="http://www.w3.org/2000/svg" width="{width}" height="{height}" '
         f'viewBox="0 0 {width} {height}" role="img" font-family="system-ui, sans-serif" font-size="12">',
         f"<title>{_e(f'{measure} of {analysis.spec.exposure} on {analysis.spec.outcome} by stratum')}</title>",
-        f'<text x="8" y="18" font-weight="bold">Stratum</text>',
+        '<text x="8" y="18" font-weight="bold">Stratum</text>',
         f'<text x="{width - 8}" y="18" text-anchor="end" font-weight="bold">'
         f"{_e(analysis.spec.measure)} ({analysis.spec.level:.0%} interval)</text>",
     ]
@@ -358,7 +358,7 @@ def _diagnostics(analysis: Analysis, digits: int) -> str:
             out.append(f"<p><strong>{len(unique)} warning(s):</strong></p><ul>{items}</ul>")
         else:
             out.append("<p>No check raised a warning.</p>")
-    out.append(_table(d, digits=digits))
+    out.append(f"<details><summary>All {len(d)} checks</summary>{_table(d, digits=digits)}</details>")
     return "".join(out)
 
 

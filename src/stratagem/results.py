@@ -173,6 +173,25 @@ class Analysis:
         )
         return "\n".join([title, "", head, rule, *body, "", f"_{CAUTION}_", ""])
 
+    # -- exports (implemented in stratagem.report and stratagem.export) --------------------------
+    def to_html(self, path=None, **options) -> str:
+        """Self-contained HTML report (no network); see :func:`stratagem.report.to_html`."""
+        from .report import to_html
+
+        return to_html(self, path, **options)
+
+    def to_latex(self, path=None, **options) -> str:
+        """LaTeX table, journal style; see :func:`stratagem.export.to_latex`."""
+        from .export import to_latex
+
+        return to_latex(self, path, **options)
+
+    def to_csv(self, path=None, **options) -> str:
+        """CSV of the strata and overall rows; see :func:`stratagem.export.to_csv`."""
+        from .export import to_csv
+
+        return to_csv(self, path, **options)
+
     # -- reproduction ----------------------------------------------------------------------------
     def recipe(self, data_name: str = "df") -> str:
         """Python source that, run with the same table bound to ``data_name``, gives this result."""
