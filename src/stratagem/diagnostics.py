@@ -103,31 +103,31 @@ class _Groups:
 
     def extreme(self, values: np.ndarray, how: str) -> np.ndarray:
         """Minimum or maximum of ``values`` per (group, arm) over kept rows; NaN where empty."""
-        s = pd.Series(values[self.keep]).groupby(self.code[self.keep])
-        got = s.min() if how == "min" else s.max()
-        out = np.full(2 * self.k, np.nan)
-        out[got.index.to_numpy()] = got.to_numpy()
+        fill = np.inf if how == "min" else -np.inf
+        ufunc = np.minimum if how == "min" else np.maximum
+        out = np.full(2 * self.k, fill)
+        ufunc.at(out, self.code, np.where(self.keep, values, fill))  # one unbuffered pass (numpy >= 1.25)
         per = out.reshape(self.k, 2)
-        with np.errstate(all="ignore"):
-            total = np.nanmin(per, axis=0) if how == "min" else np.nanmax(per, axis=0)
-        return np.vstack([per, total[None, :]])
+        per = np.vstack([per, (per.min(axis=0) if how == "min" else per.max(axis=0))[None, :]])
+        return np.where(np.isfinite(per), per, np.nan)
 
 
 def _terms(confounders: pd.DataFrame):
-    """Yield (label, values float (n,), is_binary) for every confounder term (indicator-coded)."""
+    """Yield ("numeric", name, values, is_binary) or ("levels", name, codes, levels) per confounder."""
     for name in confounders.columns:
         s = confounders[name]
         if pd.api.types.is_bool_dtype(s):
-            yield str(name), s.to_numpy(dtype=float), True
+            yield "numeric", str(name), s.to_numpy(dtype=float), True
         elif pd.api.types.is_numeric_dtype(s):
             x = s.to_numpy(dtype=float)
-            yield str(name), x, bool(np.isin(x, (0.0, 1.0)).all())
+            yield "numeric", str(name), x, bool(((x == 0.0) | (x == 1.0)).all())
         else:
-            codes, levels = pd.factorize(s, sort=True)
-            if len(levels) < 2:
-                continue
-            for j, level in enumerate(levels):
-                yield f"{name}={level}", (codes == j).astype(float), True
+            if isinstance(s.dtype, pd.CategoricalDtype):
+                codes, levels = s.cat.codes.to_numpy(), list(s.cat.categories)
+            else:
+                codes, levels = pd.factorize(s, sort=True)
+            if len(levels) >= 2:
+                yield "levels", str(name), codes.astype(np.int64), list(levels)
 
 
 def _smd_groups(groups: _Groups, x: np.ndarray, w: np.ndarray, binary: bool, n_rows: np.ndarray):
@@ -148,6 +148,18 @@ def _smd_groups(groups: _Groups, x: np.ndarray, w: np.ndarray, binary: bool, n_r
     return np.where(np.isfinite(d), d, np.nan)
 
 
+def _smd_levels(groups: _Groups, codes: np.ndarray, n_levels: int, w: np.ndarray) -> np.ndarray:
+    """SMD of every level's indicator per group, shape (G, L), from one bincount over levels."""
+    per = np.bincount(groups.code * n_levels + codes, weights=w,
+                      minlength=2 * groups.k * n_levels).reshape(groups.k, 2, n_levels)
+    per = np.concatenate([per, per.sum(axis=0, keepdims=True)], axis=0)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        p = per / per.sum(axis=2, keepdims=True)
+        var = p * (1 - p)
+        d = (p[:, 1] - p[:, 0]) / np.sqrt((var[:, 1] + var[:, 0]) / 2)
+    return np.where(np.isfinite(d), d, np.nan)
+
+
 def diagnostics_table(prep: Prepared, gm: GroupMeans) -> pd.DataFrame:
     """The long table of checks (see the module docstring) for one estimate."""
     names = list(prep.labels["stratum"]) + ["overall"]
@@ -157,8 +169,7 @@ def diagnostics_table(prep: Prepared, gm: GroupMeans) -> pd.DataFrame:
     frames = []
 
     def add(check, arm, value, warning):
-        frames.append(pd.DataFrame({"stratum": names, "check": check, "arm": arm,
-                                    "value": np.asarray(value, dtype=float), "warning": warning}))
+        frames.append((check, arm, np.asarray(value, dtype=float), np.broadcast_to(warning, len(names))))
 
     for j in (1, 0):
         warn = np.where(n_rows[:, j] < MIN_ROWS, f"fewer than {MIN_ROWS} rows in the {ARMS[j]} arm", "")
@@ -201,19 +212,31 @@ def diagnostics_table(prep: Prepared, gm: GroupMeans) -> pd.DataFrame:
                          f"effective sample size under {ESS_SHARE:.0%} of the {ARMS[j]} arm's rows: "
                          "a few rows carry most of the weight", ""))
 
-    for label, x, binary in _terms(prep.confounders):
-        before = _smd_groups(groups, x, f, binary, n_rows)
-        add(f"smd before: {label}", BOTH, before, "")
-        if ipw is not None:
-            after = _smd_groups(groups, x, f * v, binary, n_rows)
-            add(f"smd after: {label}", BOTH, after,
-                np.where(np.abs(after) > SMD_LIMIT,
-                         f"imbalance in {label} remains after weighting (|SMD| > {SMD_LIMIT})", ""))
+    for kind, name, x, info in _terms(prep.confounders):
+        if kind == "numeric":
+            labels = [name]
+            before = _smd_groups(groups, x, f, info, n_rows)[:, None]
+            after = _smd_groups(groups, x, f * v, info, n_rows)[:, None] if ipw is not None else None
+        else:
+            labels = [f"{name}={level}" for level in info]
+            before = _smd_levels(groups, x, len(info), f)
+            after = _smd_levels(groups, x, len(info), f * v) if ipw is not None else None
+        for j, label in enumerate(labels):
+            add(f"smd before: {label}", BOTH, before[:, j], "")
+            if after is not None:
+                add(f"smd after: {label}", BOTH, after[:, j],
+                    np.where(np.abs(after[:, j]) > SMD_LIMIT,
+                             f"imbalance in {label} remains after weighting (|SMD| > {SMD_LIMIT})", ""))
 
-    table = pd.concat(frames, ignore_index=True)
-    order = {name: i for i, name in enumerate(names)}
-    table["_g"] = table["stratum"].map(order)
-    table = table.sort_values("_g", kind="stable").drop(columns="_g").reset_index(drop=True)
+    # long form, group by group (checks in the order added)
+    g, c = len(names), len(frames)
+    table = pd.DataFrame({
+        "stratum": np.repeat(np.asarray(names, dtype=object), c),
+        "check": np.tile(np.asarray([fr[0] for fr in frames], dtype=object), g),
+        "arm": np.tile(np.asarray([fr[1] for fr in frames], dtype=object), g),
+        "value": np.stack([fr[2] for fr in frames], axis=1).ravel(),
+        "warning": np.stack([np.asarray(fr[3], dtype=object) for fr in frames], axis=1).ravel(),
+    })
     return table[DIAGNOSTIC_COLUMNS]
 
 
