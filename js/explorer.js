@@ -43,6 +43,7 @@ const TABLE_FIELDS = [
   ["estimate", "estimate"],
   ["ci_low", "lower"],
   ["ci_high", "upper"],
+  ["p_value", "p"],
   ["status", "status"],
 ];
 const COUNT_FIELDS = new Set(["n", "n_exposed", "n_unexposed"]);
@@ -156,6 +157,40 @@ export function axis(rows, ratio, nullValue, left, right) {
     ticks = niceTicks(d0, d1);
   }
   return { domain: [d0, d1], x, ticks };
+}
+
+// ---------------------------------------------------------------------------------------------
+// Heterogeneity line (same rules as stratagem/widgets/snapshot.py: heterogeneity_line)
+
+export const TEST_NAMES = {
+  cochran_q: "Cochran's Q",
+  i2: "I²",
+  interaction_wald: "interaction Wald",
+  interaction_lr: "interaction LR",
+  breslow_day: "Breslow-Day",
+  gail_simon: "Gail-Simon qualitative",
+};
+const HEADLINE = ["cochran_q", "i2", "gail_simon"];
+const finite = (v) => v !== null && v !== undefined && Number.isFinite(v);
+
+function testPiece(t) {
+  const name = TEST_NAMES[t.test] ?? String(t.test).replaceAll("_", " ");
+  if (t.test === "i2") return finite(t.statistic) ? `I² = ${(t.statistic * 100).toFixed(0)}%` : "";
+  if (!finite(t.statistic) && !finite(t.p_value)) return "";
+  let piece = `${name} ${fmt(t.statistic, 2)}`;
+  if (finite(t.df)) piece += ` on ${t.df.toFixed(0)} df`;
+  if (finite(t.p_value)) piece += `, ${fmtP(t.p_value)}`;
+  return piece;
+}
+
+/** One line of the tests of effect modification, or why there is none. */
+export function heterogeneityLine(result) {
+  const tests = result.heterogeneity || [];
+  if (!(result.modifiers || []).length) return "Add a modifier to test for effect modification.";
+  const head = tests.filter((t) => HEADLINE.includes(t.test));
+  const pieces = (head.length ? head : tests).map(testPiece).filter((p) => p);
+  if (!pieces.length) return "No test of effect modification for this analysis.";
+  return `Effect modification: ${pieces.join(" · ")}`;
 }
 
 // ---------------------------------------------------------------------------------------------
@@ -507,6 +542,20 @@ function render({ model, el }) {
     tableBox.append(table);
     wrap.append(tableBox, drawPlot(result));
     effects.append(wrap, h("p", { class: "sg-het" }, heterogeneityLine(result)));
+    const tests = result.heterogeneity || [];
+    if (tests.length) {
+      const details = h("details", { class: "sg-het-all" });
+      details.append(h("summary", {}, "All tests of effect modification"));
+      const list = h("ul");
+      for (const t of tests) {
+        const piece = testPiece(t);
+        const li = h("li", { "data-test": String(t.test) }, piece || TEST_NAMES[t.test] || String(t.test));
+        if (t.note) li.append(h("span", { class: "sg-hint" }, ` — ${t.note}`));
+        list.append(li);
+      }
+      details.append(list);
+      effects.append(details);
+    }
     effects.append(h("p", { class: "sg-scale" }, `${result.scale_note}; ${Math.round(result.level * 1000) / 10}% ${result.interval} intervals.`));
   }
 
@@ -559,22 +608,6 @@ function render({ model, el }) {
       svg.append(g);
     });
     return svg;
-  }
-
-  function heterogeneityLine(result) {
-    const tests = result.heterogeneity || [];
-    if (!(result.modifiers || []).length) return "Add a modifier to test for effect modification.";
-    if (tests.length === 0) return "No test of effect modification for this analysis.";
-    return tests
-      .map((t) => {
-        let piece = `${t.test}: ${fmt(t.statistic, 2)}`;
-        if (t.df !== null && t.df !== undefined) piece += ` on ${fmt(t.df, 0)} df`;
-        const p = fmtP(t.p_value);
-        if (p) piece += `, ${p}`;
-        if (t.note) piece += ` (${t.note})`;
-        return piece;
-      })
-      .join("; ");
   }
 
   function drawTypes(result) {

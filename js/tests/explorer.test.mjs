@@ -320,7 +320,8 @@ test("views switch; types, checks and code show their tables", () => {
   root.querySelector('[data-view="code"]').click();
   assert.match(root.querySelector("pre.sg-code").textContent, /sg\.analyze/);
   assert.ok(root.querySelector(".sg-copy"));
-  assert.match(root.querySelector(".sg-het").textContent, /Cochran Q: 3\.20 on 1 df, p = 0\.070/);
+  assert.equal(root.querySelector(".sg-het").textContent, "Effect modification: Cochran Q 3.20 on 1 df, p = 0.070");
+  assert.equal(root.querySelectorAll(".sg-het-all li").length, 1);
 });
 
 test("every model.on is paired with a model.off in cleanup", () => {
@@ -332,4 +333,21 @@ test("every model.on is paired with a model.off in cleanup", () => {
   for (const pair of model.log.on) {
     assert.ok(model.log.off.some((o) => o[0] === key(pair)[0] && o[1] === key(pair)[1]), `off for ${pair[0]}`);
   }
+});
+
+test("heterogeneity line: headline tests only, I² as a percentage", async () => {
+  const { heterogeneityLine } = await import("../explorer.js");
+  const tests = [
+    { test: "cochran_q", statistic: 15.436, df: 3, p_value: 0.00148, note: "" },
+    { test: "i2", statistic: 0.8057, df: null, p_value: null, note: "" },
+    { test: "interaction_lr", statistic: 11.4, df: 3, p_value: 0.0099, note: "" },
+    { test: "breslow_day", statistic: null, df: null, p_value: null, note: "n/a" },
+    { test: "gail_simon", statistic: 0, df: 3, p_value: 0.875, note: "" },
+  ];
+  assert.equal(
+    heterogeneityLine({ modifiers: ["sex"], heterogeneity: tests }),
+    "Effect modification: Cochran's Q 15.44 on 3 df, p = 0.001 · I² = 81% · Gail-Simon qualitative 0.00 on 3 df, p = 0.875",
+  );
+  assert.equal(heterogeneityLine({ modifiers: [], heterogeneity: tests }), "Add a modifier to test for effect modification.");
+  assert.equal(heterogeneityLine({ modifiers: ["sex"], heterogeneity: [] }), "No test of effect modification for this analysis.");
 });

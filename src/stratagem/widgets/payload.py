@@ -66,6 +66,10 @@ def _rows(analysis: Analysis) -> list[dict]:
     out = []
     for row in frame.to_dict(orient="records"):
         entry = {k: plain(row.get(k)) for k in ROW_FIELDS}
+        # Columns the toolkit adds (adjusted p-values, simultaneous intervals, E-values, ...).
+        entry["extra"] = {
+            str(k): plain(v) for k, v in row.items() if k not in ROW_FIELDS and k not in analysis.modifiers
+        }
         entry["levels"] = {m: plain(row.get(m)) for m in analysis.modifiers}
         out.append(entry)
     return out

@@ -216,25 +216,43 @@ def _table(payload: dict) -> str:
     )
 
 
+TEST_NAMES = {
+    "cochran_q": "Cochran's Q",
+    "i2": "I²",
+    "interaction_wald": "interaction Wald",
+    "interaction_lr": "interaction LR",
+    "breslow_day": "Breslow-Day",
+    "gail_simon": "Gail-Simon qualitative",
+}
+_HEADLINE = ("cochran_q", "i2", "gail_simon")
+
+
+def _test_piece(t: dict) -> str:
+    name = TEST_NAMES.get(str(t.get("test")), str(t.get("test")).replace("_", " "))
+    stat = t.get("statistic")
+    if t.get("test") == "i2":
+        return f"I² = {stat * 100:.0f}%" if stat is not None else ""
+    if stat is None and t.get("p_value") is None:
+        return ""
+    piece = f"{name} {fmt(stat, 2)}"
+    if t.get("df") is not None:
+        piece += f" on {t['df']:.0f} df"
+    p = t.get("p_value")
+    if p is not None:
+        piece += ", p < 0.001" if p < 0.001 else f", p = {p:.3f}"
+    return piece
+
+
 def heterogeneity_line(payload: dict) -> str:
-    """One line of the tests of modification, or why there is none."""
+    """One line of the tests of effect modification, or why there is none (same rules as the JS)."""
     tests = payload.get("heterogeneity") or []
     if not payload.get("modifiers"):
         return "Add a modifier to test for effect modification."
-    if not tests:
+    head = [t for t in tests if t.get("test") in _HEADLINE] or tests
+    pieces = [p for p in (_test_piece(t) for t in head) if p]
+    if not pieces:
         return "No test of effect modification for this analysis."
-    parts = []
-    for t in tests:
-        piece = f"{t.get('test')}: {fmt(t.get('statistic'), 2)}"
-        if t.get("df") is not None:
-            piece += f" on {fmt(t.get('df'), 0)} df"
-        p = t.get("p_value")
-        if p is not None:
-            piece += ", p < 0.001" if p < 0.001 else f", p = {p:.3f}"
-        if t.get("note"):
-            piece += f" ({t['note']})"
-        parts.append(piece)
-    return "; ".join(parts)
+    return "Effect modification: " + " · ".join(pieces)
 
 
 def snapshot_html(payload: dict) -> str:

@@ -1,0 +1,327 @@
+"""The Explorer widget, driven as the front end drives it: set the synced traits, read the result.
+
+The synced ``_result`` must be exactly the payload of ``analyze()`` on the same Spec; stale results are
+never published; errors keep the last good result; the static snapshot escapes data strings.
+"""
+
+from __future__ import annotations
+
+import threading
+import time
+
+import numpy as np
+import pandas as pd
+import pytest
+
+import stratagem as sg
+from stratagem.errors import ColumnNotFoundError, SpecError
+from stratagem.estimate import bootstrap as bootstrap_module
+from stratagem.widgets import explorer as explorer_module
+from stratagem.widgets.explorer import Explorer, front_end_file
+from stratagem.widgets.payload import analysis_payload
+from stratagem.widgets.snapshot import axis, snapshot_html
+from stratagem.widgets.worker import Superseded
+
+HOSTILE = "<img src=x onerror=alert(1)>"
+
+
+@pytest.fixture(scope="module")
+def demo():
+    return sg.demo_data()
+
+
+def make(df, **kw):
+    kw.setdefault("exposure", "visited")
+    kw.setdefault("outcome", "on_target")
+    kw.setdefault("method", "crude")
+    return Explorer(df, **kw)
+
+
+def reference(df, explorer):
+    """The payload analyze() gives for the Explorer's Spec, computed independently of the widget."""
+    return analysis_payload(sg.analyze(df, **explorer.spec.to_dict()))
+
+
+def test_front_end_files_are_found():
+    assert front_end_file("explorer.js").read_text().startswith("//")
+    assert ".sg-explorer" in front_end_file("explorer.css").read_text()
+
+
+def test_first_result_is_ready_after_construction(demo):
+    ex = make(demo)
+    assert ex._status["state"] == "idle"
+    assert ex.analysis is not None
+    assert ex._result == reference(demo, ex)
+    assert [r["stratum"] for r in ex._result["rows"]] == ["overall"]
+
+
+@pytest.mark.parametrize(
+    "changes",
+    [
+        {"strata": ["sex"]},
+        {"strata": ["lives_alone", "insulin"], "measure": "rr"},
+        {"strata": ["insulin", "lives_alone"], "measure": "or", "level": 0.9},
+        {"strata": ["age"], "bins": {"age": 3}},
+        {"strata": ["sex"], "interval": "bootstrap", "n_boot": 50},
+    ],
+)
+def test_traits_give_exactly_analyze(demo, changes):
+    ex = make(demo)
+    for name, value in changes.items():  # one trait at a time, as a user clicks
+        setattr(ex, name, value)
+    ex.wait(60)
+    assert ex._status["state"] == "idle", ex._status
+    spec = ex.spec
+    assert list(spec.strata) == changes["strata"]
+    for name in ("measure", "level", "interval", "n_boot"):
+        if name in changes:
+            assert getattr(spec, name) == changes[name]
+    expected = sg.analyze(demo, **spec.to_dict())
+    assert ex._result == analysis_payload(expected)
+    # and the numbers are analyze()'s numbers, row by row, to the last digit
+    rows = ex._result["rows"]
+    table = expected.to_frame()
+    assert [r["stratum"] for r in rows] == list(table["stratum"])
+    for r, (_, t) in zip(rows, table.iterrows()):
+        for col in ("n", "mean_exposed", "mean_unexposed", "estimate", "ci_low", "ci_high"):
+            assert r[col] == t[col] or (r[col] is None and np.isnan(t[col]))
+    assert ex._result["recipe"] == expected.recipe()
+
+
+@pytest.mark.parametrize("method", ["standardization", "ipw", "aipw", "mantel-haenszel"])
+def test_adjusted_methods_match_analyze(demo, method):
+    ex = make(demo, confounders=("age", "deprivation", "clinic_visits"), method=method, measure="rd")
+    ex.strata = ["lives_alone"]
+    ex.wait(60)
+    assert ex._status["state"] == "idle", ex._status
+    assert ex._result == reference(demo, ex)
+
+
+def test_sync_mode_gives_the_same(demo):
+    a = make(demo, sync=True)
+    a.strata = ["sex", "insulin"]
+    assert a._status["state"] == "idle"
+    b = make(demo)
+    b.strata = ["sex", "insulin"]
+    b.wait(30)
+    assert a._result == b._result == reference(demo, a)
+
+
+def test_python_side_strata_and_constructor_strata(demo):
+    ex = make(demo, strata=("insulin",), measure="rr")
+    assert ex._result["modifiers"] == ["insulin"]
+    ex.strata = ["sex"]  # from Python: the synced result follows (the front end redraws from it)
+    ex.wait(30)
+    assert ex._result["modifiers"] == ["sex"]
+    assert ex.spec.measure == "rr"
+
+
+def test_stale_result_is_never_published(demo, monkeypatch):
+    calls = []
+    real = explorer_module.analyze
+
+    def recording(data, spec, progress=None):
+        entry = {"strata": tuple(spec.strata), "outcome": "running"}
+        calls.append(entry)
+        try:
+            out = real(data, spec, progress=progress)
+        except Superseded:
+            entry["outcome"] = "abandoned"
+            raise
+        entry["outcome"] = "finished"
+        return out
+
+    monkeypatch.setattr(explorer_module, "analyze", recording)
+    # small replicate blocks, so progress (and the chance to stop) comes every 100 replicates
+    monkeypatch.setattr(bootstrap_module, "CHUNK_CELLS", 100 * len(demo))
+    ex = make(demo, strata=("sex",), n_boot=20_000)
+    ex.wait(30)
+    published = []
+    ex.observe(lambda change: published.append(tuple(change["new"]["modifiers"])), names="_result")
+    ex.interval = "bootstrap"  # a long bootstrap starts ...
+    deadline = time.monotonic() + 10
+    while ex._status.get("progress", 0) <= 0 and time.monotonic() < deadline:
+        time.sleep(0.01)  # ... and reports progress ...
+    assert 0 < ex._status["progress"] < 1, "bootstrap progress should be published while running"
+    ex.interval = "wald"  # ... then a newer request supersedes it
+    ex.strata = ["insulin"]
+    ex.wait(60)
+    assert ex._result["modifiers"] == ["insulin"]
+    assert ex._result["interval"] == "wald"
+    assert published == [("insulin",)], "a superseded result was published"
+    long_run = [c for c in calls if c["strata"] == ("sex",)][-1]
+    assert long_run["outcome"] == "abandoned", "the superseded bootstrap should stop early"
+    assert ex._result == reference(demo, ex)
+
+
+def test_error_keeps_last_result(demo):
+    ex = make(demo, strata=("sex",))
+    good = ex._result
+    good_analysis = ex.analysis
+    ex.level = 1.5
+    ex.wait(30)
+    assert ex._status["state"] == "error"
+    assert "'level'" in ex._status["message"] and "(0, 1)" in ex._status["message"]
+    assert ex._result == good and ex.analysis is good_analysis
+    ex.strata = ["sex", "insulin"]  # still invalid: still the error, still the old result
+    ex.wait(30)
+    assert ex._status["state"] == "error" and ex._result == good
+    html = ex._repr_mimebundle_()[0]["text/html"]
+    assert "last one that succeeded" in html
+    ex.level = 0.9
+    ex.wait(30)
+    assert ex._status["state"] == "idle" and ex._status["message"] == ""
+    assert ex._result["modifiers"] == ["sex", "insulin"] and ex._result["level"] == 0.9
+
+
+def test_data_error_message_names_the_problem(demo):
+    ex = make(demo)
+    ex.strata = ["sex"]
+    ex.wait(30)
+    ex.bins = {"sex": 3}  # bins for a non-numeric column
+    ex.wait(30)
+    assert ex._status["state"] == "error"
+    assert "'sex'" in ex._status["message"] and "bins" in ex._status["message"]
+    assert ex._result["modifiers"] == ["sex"]
+
+
+def test_bins_for_columns_not_in_strata_are_ignored(demo):
+    ex = make(demo, strata=("age",), bins={"age": 3})
+    ex.strata = ["sex"]  # the front end may leave an old bins entry behind
+    ex.wait(30)
+    assert ex._status["state"] == "idle"
+    assert ex.spec.bins == {}
+
+
+def test_constructor_mistakes_raise_with_the_usual_messages(demo):
+    with pytest.raises(SpecError, match="'level' parameter"):
+        make(demo, level=2.0)
+    with pytest.raises(ColumnNotFoundError, match="'nope'"):
+        make(demo, strata=("nope",))
+    with pytest.raises(SpecError, match="Unknown Explorer argument"):
+        make(demo, colour="red")
+
+
+def test_variables_describe_columns(demo):
+    df = demo.assign(constant=1, code=[f"c{i % 40}" for i in range(len(demo))])
+    ex = make(df, counts=None)
+    by_name = {v["name"]: v for v in ex._variables}
+    assert "visited" not in by_name and "on_target" not in by_name
+    assert by_name["sex"] == {"name": "sex", "tag": "2 levels", "ok": True, "reason": "", "kind": "levels"}
+    assert by_name["age"]["tag"].startswith("numeric") and by_name["age"]["kind"] == "numeric"
+    assert by_name["constant"]["ok"] is False and "single value" in by_name["constant"]["reason"]
+    assert by_name["code"]["ok"] is False and "40 levels" in by_name["code"]["reason"]
+    only = make(demo, variables=["sex", "age"])
+    assert [v["name"] for v in only._variables] == ["sex", "age"]
+
+
+def test_user_frame_is_not_changed(demo):
+    df = demo.copy()
+    before = df.copy()
+    ex = make(df, strata=("age",))
+    ex.strata = ["age", "sex"]
+    ex.measure = "rr"
+    ex.wait(30)
+    pd.testing.assert_frame_equal(df, before)
+
+
+def test_results_are_handed_to_the_main_loop(demo, monkeypatch):
+    """Inside a kernel the worker only schedules the delivery; traits change on the loop's thread."""
+    queue = []
+    monkeypatch.setattr(explorer_module, "kernel_post", lambda: queue.append)
+    ex = make(demo)
+    seen = []
+    ex.observe(lambda change: seen.append(threading.current_thread().name), names="_result")
+    runner = ex._runner
+    runner._post = queue.append  # the constructor captured no loop outside a kernel
+    ex.strata = ["sex"]
+    deadline = time.monotonic() + 30
+    while not queue and time.monotonic() < deadline:
+        time.sleep(0.01)
+    assert queue, "the worker should schedule the delivery"
+    assert ex._result["modifiers"] == [], "the worker thread must not write the traits itself"
+    for callback in list(queue):  # the main loop runs the scheduled callbacks
+        callback()
+    assert ex._result["modifiers"] == ["sex"]
+    assert seen == [threading.main_thread().name]
+
+
+def test_wait_on_the_main_thread_delivers_a_queued_result(demo):
+    ex = make(demo)
+    queue = []
+    ex._runner._post = queue.append  # a main loop that cannot run while wait() blocks it
+    ex.strata = ["insulin"]
+    assert ex.wait(30) is ex.analysis
+    assert ex._result["modifiers"] == ["insulin"]
+    for callback in queue:  # the queued hand-off runs later and changes nothing
+        callback()
+    assert ex._result["modifiers"] == ["insulin"]
+
+
+def test_display_bundle_and_update_through_display_id(demo, monkeypatch):
+    import IPython.display as ipd
+
+    shown, updated = [], []
+    monkeypatch.setattr(ipd, "display", lambda *a, **k: shown.append((a, k)))
+    monkeypatch.setattr(ipd, "update_display", lambda *a, **k: updated.append((a, k)))
+    ex = make(demo)
+    data, _ = ex._repr_mimebundle_()
+    assert "application/vnd.jupyter.widget-view+json" in data
+    assert "<table" in data["text/html"] and "<svg" in data["text/html"]
+    assert sg.CAUTION.split(":")[0] in data["text/html"]
+    ex._ipython_display_()
+    (args, kw), = shown
+    display_id = kw["display_id"]
+    assert kw["raw"] is True and display_id
+    assert "text/html" in args[0] and "application/vnd.jupyter.widget-view+json" in args[0]
+    ex.strata = ["lives_alone"]
+    ex.wait(30)
+    assert updated, "a new result must refresh the displayed snapshot"
+    args, kw = updated[-1]
+    assert kw["display_id"] == display_id
+    assert 'data-stratum="lives_alone=yes"' in args[0]["text/html"]
+
+
+def hostile_frame():
+    rng = np.random.default_rng(0)
+    n = 400
+    return pd.DataFrame(
+        {
+            "a": rng.integers(0, 2, n),
+            "y": rng.integers(0, 2, n),
+            HOSTILE: rng.choice(["<b>bold</b>", "x & y", '"quoted"'], n),
+        }
+    )
+
+
+def test_snapshot_escapes_hostile_names_and_levels():
+    df = hostile_frame()
+    ex = Explorer(df, exposure="a", outcome="y", method="crude", strata=(HOSTILE,))
+    assert ex._variables[0]["name"] == HOSTILE  # synced verbatim: the front end inserts it as text
+    html = ex._repr_mimebundle_()[0]["text/html"]
+    assert "<img" not in html and "<b>" not in html
+    assert "&lt;img src=x onerror=alert(1)&gt;" in html
+    assert "&lt;b&gt;bold&lt;/b&gt;" in html and "x &amp; y" in html and "&quot;quoted&quot;" in html
+    rows = ex._result["rows"]
+    assert {r["levels"][HOSTILE] for r in rows[:-1]} == {"<b>bold</b>", "x & y", '"quoted"'}
+
+
+def test_snapshot_plot_geometry():
+    rows = [
+        {"stratum": "a", "estimate": 2.0, "ci_low": 1.0, "ci_high": 4.0, "status": "ok"},
+        {"stratum": "overall", "estimate": 0.5, "ci_low": 0.25, "ci_high": 1.0, "status": "ok"},
+    ]
+    ax = axis(rows, True, 1.0, 0, 100)
+    assert ax["x"](1.0) == pytest.approx((ax["x"](0.5) + ax["x"](2.0)) / 2)
+    assert {0.5, 1, 2} <= set(ax["ticks"])
+    lin = axis(rows[:1], False, 0.0, 10, 290)
+    span = 4.0 - 0.0
+    assert lin["domain"] == pytest.approx((0 - 0.05 * span, 4 + 0.05 * span))
+
+
+def test_snapshot_marks_rows_that_are_not_estimable(demo):
+    a = sg.analyze(demo, exposure="visited", outcome="on_target", method="crude", strata=("sex",))
+    payload = analysis_payload(a)
+    payload["rows"][0] = {**payload["rows"][0], "estimate": None, "status": "no exposed rows"}
+    html = snapshot_html(payload)
+    assert 'class="sg-reason"' in html and "no exposed rows" in html
