@@ -13,8 +13,9 @@ delivery runs on the worker thread under the runner's lock.
 from __future__ import annotations
 
 import threading
+from collections.abc import Callable
 from dataclasses import dataclass
-from typing import Any, Callable
+from typing import Any
 
 __all__ = ["Runner", "Outcome", "Superseded", "kernel_post"]
 
