@@ -156,7 +156,7 @@ def _status(u: Unit, need_ps: bool, need_om: bool) -> str:
     if n - n1 <= 0:
         return "no unexposed rows in this stratum"
     rows = int((w > 0).sum())
-    params = int(u.mask.sum()) - (0 if need_om else 1)
+    params = u.Z.shape[1] - (0 if need_om else 1)  # before any column is left out in this stratum
     if rows < params:
         return f"fewer rows ({rows}) than model parameters ({params})"
     if need_om and u.binary:
@@ -221,6 +221,7 @@ def weighted_quantile(values: np.ndarray, weights: np.ndarray, q: float) -> floa
 def _weights(units: list[Unit], spec: Spec) -> None:
     """Stabilised inverse probability weights ``P(A=a | stratum) / P(A=a | L, stratum)`` per unit,
     truncated at ``spec.truncate`` percentiles of all rows' weights (each replicate separately)."""
+    units = [u for u in units if u.E is not None]
     for u in units:
         N = u.W.sum(axis=1, keepdims=True)
         p1 = (u.W @ u.a)[:, None] / np.where(N > 0, N, 1.0)
@@ -229,14 +230,13 @@ def _weights(units: list[Unit], spec: Spec) -> None:
         u.free = np.ones_like(u.sw, dtype=bool)
     if spec.truncate is None:
         return
-    B = units[0].W.shape[0]
     used = [u for u in units if u.status == OK]
     if not used:
         return
     sw = np.concatenate([u.sw for u in used], axis=1)
     W = np.concatenate([u.W for u in used], axis=1)
     lo_q, hi_q = spec.truncate[0] / 100.0, spec.truncate[1] / 100.0
-    for b in range(B):  # per replicate: a sort of that replicate's weights
+    for b in range(W.shape[0]):  # per replicate: a sort of that replicate's weights
         ok = np.isfinite(sw[b])
         lo = weighted_quantile(sw[b][ok], W[b][ok], lo_q)
         hi = weighted_quantile(sw[b][ok], W[b][ok], hi_q)
