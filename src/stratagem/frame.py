@@ -215,10 +215,25 @@ def _fmt(x: float) -> str:
     return f"{x:.4g}"
 
 
-def _bin(s: pd.Series, name: str, rule) -> tuple[pd.Categorical, tuple, str]:
+def _quantiles(x: np.ndarray, w: np.ndarray | None, q: np.ndarray) -> np.ndarray:
+    """Quantiles of ``x`` as if each value were repeated ``w`` times (numpy's default, linear
+    method, on the expanded data), so a table of counts gets the bins of its individual rows."""
+    if w is None or np.all(w == 1):
+        return np.quantile(x, q)
+    order = np.argsort(x, kind="stable")
+    xs, ws = x[order], w[order]
+    xs, ws = xs[ws > 0], ws[ws > 0]
+    cum = np.cumsum(ws)  # expanded position j holds xs[i] for the first i with cum[i] > j
+    h = (cum[-1] - 1) * q
+    lo, hi = np.floor(h), np.ceil(h)
+    at = lambda j: xs[np.minimum(np.searchsorted(cum, j, side="right"), len(xs) - 1)]  # noqa: E731
+    return at(lo) + (h - lo) * (at(hi) - at(lo))
+
+
+def _bin(s: pd.Series, name: str, rule, w: np.ndarray | None = None) -> tuple[pd.Categorical, tuple, str]:
     x = s.to_numpy(dtype=float)
     if isinstance(rule, int):
-        edges = np.unique(np.quantile(x, np.linspace(0, 1, rule + 1)))
+        edges = np.unique(_quantiles(x, w, np.linspace(0, 1, rule + 1)))
         if len(edges) < 3:
             raise ModifierError(
                 f"Modifier {name!r} has too few distinct values for {rule} quantile bins; "
@@ -243,7 +258,7 @@ def _bin(s: pd.Series, name: str, rule) -> tuple[pd.Categorical, tuple, str]:
 
 
 def _modifier_levels(
-    s: pd.Series, name: str, spec: Spec, *, auto_bin: bool = True
+    s: pd.Series, name: str, spec: Spec, *, auto_bin: bool = True, w: np.ndarray | None = None
 ) -> tuple[pd.Categorical, tuple | None, str | None]:
     """Categorical of level labels for one modifier; numeric columns with many values are binned
     (unless ``auto_bin`` is False: then each value is its own level, as for few distinct values)."""
@@ -253,7 +268,7 @@ def _modifier_levels(
         if rule is None and auto_bin and n_distinct > BIN_THRESHOLD:
             rule = DEFAULT_BINS
         if rule is not None:
-            cat, edges, how = _bin(s, name, rule)
+            cat, edges, how = _bin(s, name, rule, w)
             return cat, edges, f"Modifier {name!r} cut into {how}."
         values = np.sort(s.unique())
         labels = [_fmt(v) if not float(v).is_integer() else str(int(v)) for v in values]
@@ -284,13 +299,15 @@ def _modifier_levels(
     return pd.Categorical.from_codes(codes, categories=labels), None, None
 
 
-def _strata(df: pd.DataFrame, spec: Spec) -> tuple[np.ndarray, pd.DataFrame, list[str], dict]:
+def _strata(
+    df: pd.DataFrame, spec: Spec, w: np.ndarray | None = None
+) -> tuple[np.ndarray, pd.DataFrame, list[str], dict]:
     n = len(df)
     if not spec.strata:
         return np.zeros(n, dtype=np.int64), pd.DataFrame({"stratum": ["all"]}), [], {}
     cats, notes, edges = {}, [], {}
     for name in spec.strata:
-        cat, e, note = _modifier_levels(df[name], name, spec)
+        cat, e, note = _modifier_levels(df[name], name, spec, w=w)
         cats[name] = cat
         if e is not None:
             edges[name] = e
@@ -387,7 +404,7 @@ def prepare(data: pd.DataFrame, spec: Spec) -> tuple[Prepared, Spec]:
     if spec.potential_outcomes is not None:
         y0, _ = _code_outcome(df[spec.potential_outcomes[0]], spec.potential_outcomes[0])
         y1, _ = _code_outcome(df[spec.potential_outcomes[1]], spec.potential_outcomes[1])
-    stratum, labels, strata_notes, edges = _strata(df, spec)
+    stratum, labels, strata_notes, edges = _strata(df, spec, w)
     confounders = df[list(spec.confounders)].copy() if spec.confounders else pd.DataFrame(index=df.index)
     prepared = Prepared(
         a=a,
