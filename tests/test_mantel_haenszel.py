@@ -344,3 +344,34 @@ def test_bootstrap_interval_uses_replicates_of_the_mh_odds_ratio(tolb):
     assert a.overall["se"] == pytest.approx(0.311, rel=0.2)
     b = mh(tolb, "or", confounders=("age",), interval="bootstrap", n_boot=400, seed=3)
     assert (b.overall["ci_low"], b.overall["ci_high"]) == (a.overall["ci_low"], a.overall["ci_high"])
+
+
+# -- counting fast paths -----------------------------------------------------------------------
+@pytest.mark.parametrize("high", [1, 7, 5000, 1 << 40])
+def test_occupied_codes_equal_numpy_unique(high):
+    """frame._occupied (bincount + lookup when the code space is small) equals np.unique."""
+    from stratagem.frame import _occupied
+
+    rng = np.random.default_rng(high % 97)
+    radix = rng.integers(0, high, 10_000).astype(np.int64)
+    combos, inverse = _occupied(radix)
+    ref_combos, ref_inverse = np.unique(radix, return_inverse=True)
+    np.testing.assert_array_equal(combos, ref_combos)
+    np.testing.assert_array_equal(inverse, ref_inverse.reshape(-1))
+
+
+def test_confounder_cells_compress_large_code_spaces():
+    """Many-level confounders (codes beyond the dense limit) are compressed and still pool right."""
+    from stratagem.estimate import mantel_haenszel as mod
+
+    rng = np.random.default_rng(4)
+    df = random_frame(rng, 2000).assign(pair=rng.integers(0, 400, 2000).astype(str))
+    a = mh(df, "or", counts=None, confounders=("pair", "c1"))
+    old = mod._MAX_DENSE
+    try:
+        mod._MAX_DENSE = 8  # force the np.unique route
+        b = mh(df, "or", counts=None, confounders=("pair", "c1"))
+    finally:
+        mod._MAX_DENSE = old
+    assert a.overall["estimate"] == pytest.approx(b.overall["estimate"], rel=1e-12)
+    assert a.overall["se"] == pytest.approx(b.overall["se"], rel=1e-12)
