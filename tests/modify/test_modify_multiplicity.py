@@ -45,3 +45,16 @@ def test_maxt_covers_all_strata_jointly_at_level():
     assert c == pytest.approx(exact, abs=0.05)
     # wider than pointwise, narrower than or close to Bonferroni
     assert stats.norm.ppf(0.975) < c <= stats.norm.ppf(1 - 0.05 / 6) + 0.02
+
+
+def test_fast_paths_equal_statsmodels_on_random_inputs():
+    rng = np.random.default_rng(4)
+    for m in (1, 2, 3, 7, 30):
+        for _ in range(6):
+            p = rng.random(m) ** 3
+            if m > 2:
+                p[1] = p[0]  # ties
+            for method in ("holm", "fdr_bh"):
+                # reference library: statsmodels multipletests
+                assert adjusted_p(p, method) == pytest.approx(multipletests(p, method=method)[1])
+    assert adjusted_p([0.01, 0.02], "bonferroni") == pytest.approx([0.02, 0.04])

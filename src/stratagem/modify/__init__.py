@@ -43,6 +43,22 @@ STRATA_EXTRA_COLUMNS = ["p_holm", "p_bh", "ci_low_simultaneous", "ci_high_simult
                         "e_value_ci"]
 
 
+def _replicate_theta(spec, extra: dict):
+    """Bootstrap replicates of the estimates on the analysis scale, (B, G), or None.
+
+    Estimators that estimate the measure directly (Mantel-Haenszel) provide them as
+    ``extra["replicate_theta"]``; otherwise they follow from the replicates of (m1, m0).
+    """
+    theta_b = extra.get("replicate_theta")
+    if theta_b is not None:
+        return np.asarray(theta_b, dtype=float)
+    reps = extra.get("replicates")
+    if reps is None:
+        return None
+    theta_b, _ = measures.on_analysis_scale(spec.measure, reps[0], reps[1], 0.0, 0.0, 0.0)
+    return theta_b
+
+
 def _evalues(spec, estimate, ci_low, ci_high, baseline) -> tuple[float, float, str]:
     if spec.method == "exact" or spec.measure == "md":
         return math.nan, math.nan, ""
@@ -104,10 +120,11 @@ def toolkit_fields(prep, spec, gm, fields) -> dict:
     strata = fields["strata"].copy()
     overall = fields["overall"].copy()
     notes = list(fields.get("notes", ()))
-    replicates = (fields.get("extra") or {}).get("replicates")
+    extra = fields.get("extra") or {}
     ratio = spec.measure in measures.RATIO
+    theta_boot = _replicate_theta(spec, extra)
 
-    out = {"heterogeneity": heterogeneity_table(prep, spec, gm, strata, replicates)}
+    out = {"heterogeneity": heterogeneity_table(prep, spec, gm, strata, theta_boot)}
 
     # multiplicity over estimable strata
     status_ok = strata["status"].to_numpy() == "ok"
@@ -120,11 +137,8 @@ def toolkit_fields(prep, spec, gm, fields) -> dict:
         theta = np.log(est) if ratio else est
     if spec.method == "exact":
         lo = hi = np.full(len(strata), np.nan)
-    elif replicates is not None and len(strata):
-        k = len(strata)
-        tb, _ = measures.on_analysis_scale(spec.measure, replicates[0][:, :k], replicates[1][:, :k],
-                                           0.0, 0.0, 0.0)
-        lo, hi, c = maxt_intervals(theta, se, tb, spec.level, ratio)
+    elif theta_boot is not None and len(strata):
+        lo, hi, c = maxt_intervals(theta, se, theta_boot[:, : len(strata)], spec.level, ratio)
         if np.isfinite(c):
             notes.append(f"Simultaneous intervals: bootstrap max-|t|, critical value {c:.3g} "
                          f"over {int(np.isfinite(lo).sum())} strata.")

@@ -47,8 +47,9 @@ from statsmodels.stats.contingency_tables import StratifiedTable
 from statsmodels.stats.meta_analysis import combine_effects
 
 from .. import measures
+from ..estimate import glm
 from ..results import HETEROGENEITY_COLUMNS
-from .design import confounder_matrix, fit_glm
+from .design import confounder_matrix
 from .gail_simon import gail_simon
 
 __all__ = [
@@ -61,7 +62,7 @@ __all__ = [
     "cell_counts",
 ]
 
-LR_MAX_ROWS = 50_000  # rows up to which the confounder-adjusted interaction LR test is fitted
+LR_MAX_ROWS = 20_000  # rows up to which the confounder-adjusted interaction LR test is fitted
 SCALE_NAMES = {"rd": "risk difference", "rr": "log risk ratio", "or": "log odds ratio",
                "md": "mean difference"}
 ALPHA = 0.05  # threshold used only in the words of the "scale" row
@@ -112,8 +113,27 @@ def cell_counts(prep, groups: int | None = None):
     ``[k, a, y]`` with a = 1 exposed, y = 1 outcome. One ``np.bincount`` pass over the rows.
     """
     k = prep.n_strata if groups is None else groups
-    code = prep.stratum * 4 + prep.a.astype(np.int64) * 2 + prep.y.astype(np.int64)
+    code = prep.stratum * 4
+    code += prep.a.astype(np.int64) * 2
+    code += prep.y.astype(np.int64)
     return np.bincount(code, weights=prep.w, minlength=4 * k).reshape(k, 2, 2)
+
+
+def _loglik(y, x, w, binary: bool, beta0=None):
+    """Maximised log-likelihood of a logistic model (binary) or residual sum of squares (linear).
+
+    Fitted with the project's Newton/IRLS routine (``stratagem.estimate.glm.fit``, tested equal to
+    statsmodels GLM); statsmodels' GLM set-up (rank checks by SVD) costs more than the fit here.
+    Raises ``FloatingPointError`` when a logistic fit does not converge (separation).
+    """
+    res = glm.fit(x, y, w, family="binomial" if binary else "gaussian", beta0=beta0)
+    eta = x @ res.beta
+    if not binary:
+        r = y - eta
+        return float(np.sum(w * r * r)), res.beta
+    if not res.converged or res.separated:
+        raise FloatingPointError("the logistic working model did not converge (separation?)")
+    return float(np.sum(w * (y * eta - np.logaddexp(0.0, eta)))), res.beta
 
 
 def _binary_lr_cells(cells):
@@ -133,66 +153,84 @@ def _binary_lr_cells(cells):
     yy = np.concatenate([np.ones(2 * k), np.zeros(2 * k)])
     ww = np.concatenate([s, n - s])
     keep = ww > 0
-    res = fit_glm(yy[keep], xx[keep], ww[keep], binary=True)
-    return 2.0 * (ll_full - res.llf)
+    ll_red, _ = _loglik(yy[keep], xx[keep], ww[keep], binary=True)
+    return 2.0 * (ll_full - ll_red)
 
 
-def _gaussian_lr(y, x_red, x_full, w):
-    """ML likelihood-ratio statistic N log(RSS_reduced / RSS_full) of nested weighted linear models."""
-    def rss(x):
-        sw = np.sqrt(w)
-        beta, *_ = np.linalg.lstsq(x * sw[:, None], y * sw, rcond=None)
-        r = y - x @ beta
-        return float(np.sum(w * r * r))
+def _gaussian_lr_cells(prep, ok_strata):
+    """ML LR statistic of the product terms in a linear model without confounders, from cell sums.
 
-    return float(w.sum() * np.log(rss(x_red) / rss(x_full)))
+    The full model is saturated in (stratum, exposure): its residual sum of squares is the
+    within-cell one. The reduced model is fitted on the 2K cell means weighted by the cell sizes;
+    its residual sum of squares adds the weighted squared deviations of the cell means. One
+    ``np.bincount`` pass per sum over the rows.
+    """
+    k_all = prep.n_strata
+    code = prep.stratum * 2 + prep.a.astype(np.int64)
+    n = np.bincount(code, weights=prep.w, minlength=2 * k_all).reshape(k_all, 2)[ok_strata].ravel()
+    s1 = np.bincount(code, weights=prep.w * prep.y, minlength=2 * k_all).reshape(k_all, 2)[ok_strata].ravel()
+    s2 = np.bincount(code, weights=prep.w * prep.y * prep.y,
+                     minlength=2 * k_all).reshape(k_all, 2)[ok_strata].ravel()
+    k = len(ok_strata)
+    mean = s1 / n
+    within = float(np.sum(s2 - s1 * mean))
+    strata = np.repeat(np.arange(k), 2)
+    arm = np.tile([0.0, 1.0], k)
+    x = np.column_stack([np.ones(2 * k), arm] + [(strata == j).astype(float) for j in range(1, k)])
+    rss_cells, _ = _loglik(mean, x, n, binary=False)
+    return float(n.sum() * np.log((within + rss_cells) / within))
 
 
-def interaction_lr(prep, spec, ok_strata):
-    """Likelihood-ratio test of exposure-by-stratum terms; returns ``(statistic, df, p, note)``."""
+def interaction_lr(prep, spec, ok_strata, cells=None):
+    """Likelihood-ratio test of exposure-by-stratum terms; returns ``(statistic, df, p, note)``.
+
+    ``cells`` may pass the (K, 2, 2) weighted counts of :func:`cell_counts` already computed.
+    """
     ok_strata = np.asarray(ok_strata)
     k = len(ok_strata)
     df = k - 1
     adjusted = spec.method not in ("crude", "exact") and len(spec.confounders) > 0
     scale = "odds-ratio scale (logistic model)" if prep.binary else "difference scale (linear model)"
-    rows = np.isin(prep.stratum, ok_strata) & (prep.w > 0)
-    remap = np.full(prep.n_strata, -1)
-    remap[ok_strata] = np.arange(k)
     try:
-        if not adjusted and prep.binary:
-            code = remap[prep.stratum[rows]] * 4 + prep.a[rows].astype(np.int64) * 2 + prep.y[rows].astype(np.int64)
-            cells = np.bincount(code, weights=prep.w[rows], minlength=4 * k).reshape(k, 2, 2)
-            stat = _binary_lr_cells(cells)
-            how = "fitted on the stratum x exposure cells"
+        if not adjusted:
+            if prep.binary:
+                cells = cell_counts(prep) if cells is None else cells
+                stat = _binary_lr_cells(cells[ok_strata])
+            else:
+                stat = _gaussian_lr_cells(prep, ok_strata)
+            how = "no confounders, fitted on the stratum x exposure cells"
         else:
+            rows = np.isin(prep.stratum, ok_strata) & (prep.w > 0)
             n_rows = int(rows.sum())
-            if adjusted and n_rows > LR_MAX_ROWS:
+            if n_rows > LR_MAX_ROWS:
                 return (np.nan, df, np.nan,
                         f"not computed: {n_rows:,} rows is above {LR_MAX_ROWS:,}, where refitting the "
                         "working model with confounders on every analysis would be slow; see "
                         "interaction_wald")
+            remap = np.full(prep.n_strata, -1)
+            remap[ok_strata] = np.arange(k)
             st = remap[prep.stratum[rows]]
             a = prep.a[rows]
             y = prep.y[rows]
             w = prep.w[rows]
             dummies = np.column_stack([(st == j).astype(float) for j in range(1, k)])
-            conf = confounder_matrix(prep.confounders.loc[rows]) if adjusted else np.empty((len(y), 0))
+            conf = confounder_matrix(prep.confounders.loc[rows])
             x_red = np.column_stack([np.ones(len(y)), a, dummies, conf])
             x_full = np.column_stack([x_red, dummies * a[:, None]])
+            ll_red, b_red = _loglik(y, x_red, w, prep.binary)
+            ll_full, _ = _loglik(y, x_full, w, prep.binary, beta0=np.append(b_red, np.zeros(k - 1)))
             if prep.binary:
-                red = fit_glm(y, x_red, w, binary=True)
-                full = fit_glm(y, x_full, w, binary=True, start=np.append(red.params, np.zeros(k - 1)))
-                stat = 2.0 * (full.llf - red.llf)
-            else:
-                stat = _gaussian_lr(y, x_red, x_full, w)
-            how = "adjusted for the confounders" if adjusted else "no confounders"
+                stat = 2.0 * (ll_full - ll_red)
+            else:  # ML likelihood ratio of nested linear models: N log(RSS_reduced / RSS_full)
+                stat = float(w.sum() * np.log(ll_red / ll_full))
+            how = "adjusted for the confounders"
     except Exception as exc:  # separation, singular design: report, never raise inside analyze()
         return np.nan, df, np.nan, f"working model could not be fitted ({type(exc).__name__}); {scale}"
     stat = max(float(stat), 0.0)
     return stat, df, float(stats.chi2.sf(stat, df)), f"{scale}, {how}"
 
 
-def breslow_day(prep, spec, ok_strata):
+def breslow_day(prep, spec, ok_strata, cells=None):
     """Breslow-Day test with Tarone's correction; returns ``(statistic, df, p, note)`` (statsmodels)."""
     k = len(ok_strata)
     df = k - 1
@@ -200,7 +238,7 @@ def breslow_day(prep, spec, ok_strata):
         return np.nan, np.nan, np.nan, "for measure='or' with method='mantel-haenszel' or 'crude' only"
     if k < 2:
         return np.nan, np.nan, np.nan, "fewer than two estimable strata"
-    cells = cell_counts(prep)[np.asarray(ok_strata)]
+    cells = (cell_counts(prep) if cells is None else cells)[np.asarray(ok_strata)]
     # StratifiedTable wants (2, 2, K): rows exposed / unexposed, columns outcome yes / no
     tables = np.stack([cells[:, 1, 1], cells[:, 1, 0], cells[:, 0, 1], cells[:, 0, 0]], axis=1)
     tables = tables.reshape(k, 2, 2).transpose(1, 2, 0)
@@ -230,11 +268,12 @@ def _scale_row(prep, gm, ok_groups):
     if not (np.isfinite(p_rd) and np.isfinite(p_rr)):
         return _row("scale", note="scale comparison needs two strata with risks strictly between 0 and 1")
     found = [name for name, p in (("difference", p_rd), ("ratio", p_rr)) if p < ALPHA]
-    verdict = {
-        0: "no modification detected on either scale",
-        1: f"modification detected on the {found[0] if found else ''} scale only",
-        2: "modification detected on both scales",
-    }[len(found)]
+    if not found:
+        verdict = "no modification detected on either scale"
+    elif len(found) == 1:
+        verdict = f"modification detected on the {found[0]} scale only"
+    else:
+        verdict = "modification detected on both scales"
     note = (
         f"Cochran's Q p = {p_rd:.3g} on the risk-difference scale, p = {p_rr:.3g} on the ratio scale "
         f"(log risk ratio); {verdict} (at {ALPHA}). Modification depends on the scale: when the risk "
@@ -244,11 +283,11 @@ def _scale_row(prep, gm, ok_groups):
     return _row("scale", note=note)
 
 
-def heterogeneity_table(prep, spec, gm, strata: pd.DataFrame, replicates=None) -> pd.DataFrame:
+def heterogeneity_table(prep, spec, gm, strata: pd.DataFrame, theta_boot=None) -> pd.DataFrame:
     """All heterogeneity rows for one analysis (see the module docstring).
 
-    ``strata`` is the per-stratum effects table (reported scale); ``replicates`` the bootstrap
-    ``(m1, m0)`` arrays of shape (B, G) or None.
+    ``strata`` is the per-stratum effects table (reported scale); ``theta_boot`` the bootstrap
+    replicates of the stratum estimates on the analysis scale, shape (B, G) or (B, K), or None.
     """
     scale = SCALE_NAMES[spec.measure]
     if spec.method == "exact":
@@ -279,23 +318,23 @@ def heterogeneity_table(prep, spec, gm, strata: pd.DataFrame, replicates=None) -
     if cov is not None:
         v = np.asarray(cov, dtype=float)[np.ix_(ok_groups, ok_groups)]
         how = "covariance reported by the estimator"
-    elif replicates is not None:
-        tb, _ = measures.on_analysis_scale(spec.measure, replicates[0][:, ok_groups],
-                                           replicates[1][:, ok_groups], 0.0, 0.0, 0.0)
+    elif theta_boot is not None:
+        tb = np.asarray(theta_boot, dtype=float)[:, ok_groups]
         tb = tb[np.all(np.isfinite(tb), axis=1)]
         v = np.cov(tb, rowvar=False) if len(tb) > k else np.diag(se[ok] ** 2)
         how = "covariance of the bootstrap replicates"
     else:
         v = np.diag(se[ok] ** 2)
-        how = "strata independent, so it equals Cochran's Q"
+        how = "strata independent (disjoint samples), so it equals Cochran's Q"
     stat, wdf, wp = wald_equal(theta[ok], v)
     rows.append(_row("interaction_wald", stat, wdf, wp,
                      f"Wald test that all {k} stratum estimates are equal ({scale} scale; {how})"))
 
-    lr, lrdf, lrp, lrnote = interaction_lr(prep, spec, ok_groups)
+    cells = cell_counts(prep) if prep.binary else None  # one pass over the rows, shared below
+    lr, lrdf, lrp, lrnote = interaction_lr(prep, spec, ok_groups, cells)
     rows.append(_row("interaction_lr", lr, lrdf, lrp, lrnote))
 
-    bd, bddf, bdp, bdnote = breslow_day(prep, spec, ok_groups)
+    bd, bddf, bdp, bdnote = breslow_day(prep, spec, ok_groups, cells)
     rows.append(_row("breslow_day", bd, bddf, bdp, bdnote))
 
     gs = gail_simon(theta[ok], se[ok])
