@@ -340,13 +340,6 @@ def _pooled_numeric(sw, sy, ss, group):
 
 
 # -- estimator --------------------------------------------------------------------------------------
-def _arm_totals(prep: Prepared, group_rows, w=None):
-    w = prep.w if w is None else w
-    n1 = group_rows(w * prep.a)
-    n0 = group_rows(w * (1.0 - prep.a))
-    return n1 + n0, n1, n0
-
-
 def _status(measure, n1, n0, sum_w, sums, binary, usable) -> str:
     if n1 <= 0:
         return "no exposed rows in this stratum"
@@ -391,10 +384,10 @@ def mantel_haenszel(prep: Prepared, spec: Spec) -> GroupMeans:
     cells = confounder_cells(prep)
     k = prep.n_strata
     group = _Grouper(cells, k)
-    n, n1, n0 = _arm_totals(prep, lambda v: _group_rows(v, prep))
     notes = list(cells.notes)
     if prep.binary and spec.measure != "md":
         tab = _binary_tables(cells, prep, None)
+        n1, n0 = group(tab[:, 0] + tab[:, 1]), group(tab[:, 2] + tab[:, 3])  # rows per arm
         sums, corrected = _pooled_binary(tab, group, spec.measure, spec.correction)
         m1, m0, theta = _estimates(spec.measure, sums)
         if spec.measure == "or":
@@ -414,6 +407,7 @@ def mantel_haenszel(prep: Prepared, spec: Spec) -> GroupMeans:
         both_rows = _rows_in_shared_cells(tab)
     else:
         sw, sy, ss = _numeric_sums(cells, prep, None)
+        n1, n0 = group(sw[:, 1]), group(sw[:, 0])
         m1, m0, theta, v11, v00, usable, sum_w = _pooled_numeric(sw, sy, ss, group)
         shift = np.average(prep.y, weights=prep.w)
         m1, m0 = m1 + shift, m0 + shift
@@ -421,6 +415,7 @@ def mantel_haenszel(prep: Prepared, spec: Spec) -> GroupMeans:
             se = np.sqrt(v11 + v00)
         sums = {}
         both_rows = np.where((sw[:, 0] > 0) & (sw[:, 1] > 0), sw.sum(axis=1), 0.0).sum()
+    n = n1 + n0
     status = [
         _status(spec.measure, n1[g], n0[g], sum_w[g], {kk: v[g] for kk, v in sums.items()},
                 prep.binary and spec.measure != "md", usable[g])
@@ -438,11 +433,6 @@ def mantel_haenszel(prep: Prepared, spec: Spec) -> GroupMeans:
     out = GroupMeans(n, n1, n0, m1, m0, v11, v00, np.zeros_like(m1), status, theta=theta, se=se, notes=notes)
     out.extra["mh_cells"] = int(cells.n_cells)
     return out
-
-
-def _group_rows(values: np.ndarray, prep: Prepared) -> np.ndarray:
-    per = np.bincount(prep.stratum, weights=values, minlength=prep.n_strata)
-    return np.append(per, per.sum())
 
 
 def _rows_in_shared_cells(tab: np.ndarray) -> float:
