@@ -347,16 +347,16 @@ def _shares_from_frame(analysis: Analysis, target: pd.DataFrame, weights) -> tup
                 f"or re-run the analysis with bins={{{name!r}: [...]}} edges that cover the target."
             )
     labelled = label_strata(rows, spec, edges)
-    study = {lab: i for i, lab in enumerate(analysis.strata["stratum"])}
-    codes = labelled["stratum"].map(study)
-    if codes.isna().any():
-        absent = labelled.loc[codes.isna(), "stratum"].value_counts()
+    study = pd.Index(analysis.strata["stratum"])
+    codes = study.get_indexer(labelled["stratum"])  # -1 where the study has no such stratum
+    if (codes < 0).any():
+        absent = labelled.loc[codes < 0, "stratum"].value_counts()
         listed = ", ".join(f"{lab!r} ({cnt} rows)" for lab, cnt in absent.items())
         raise ModifierError(
             f"Target stratum/strata {listed} do not occur in the study, so their effect is unknown. "
             "Remove those rows from the target, or group levels so the study covers them."
         )
-    totals = np.bincount(codes.to_numpy(dtype=np.int64), weights=w, minlength=len(study))
+    totals = np.bincount(codes, weights=w, minlength=len(study))
     n_target = float(w.sum())
     return totals / n_target, n_target, notes
 
