@@ -152,7 +152,7 @@ def _code_exposure(s: pd.Series, spec: Spec) -> np.ndarray:
         return hit.to_numpy(dtype=float)
     if pd.api.types.is_bool_dtype(s):
         return s.to_numpy(dtype=float)
-    if _is_numeric(s) and set(np.unique(s.to_numpy(dtype=float))) <= {0.0, 1.0}:
+    if _is_numeric(s) and _zero_one(s.to_numpy(dtype=float)):
         return s.to_numpy(dtype=float)
     if len(levels) == 2:
         raise ExposureError(
@@ -177,7 +177,7 @@ def _code_outcome(s: pd.Series, name: str) -> tuple[np.ndarray, bool]:
     y = s.to_numpy(dtype=float)
     if not np.all(np.isfinite(y)):
         raise OutcomeError(f"Outcome {name!r} has infinite values; remove or recode those rows.")
-    return y, bool(set(np.unique(y)) <= {0.0, 1.0})
+    return y, _zero_one(y)
 
 
 def resolve(spec: Spec, binary: bool) -> Spec:
@@ -299,6 +299,27 @@ def _modifier_levels(
     return pd.Categorical.from_codes(codes, categories=labels), None, None
 
 
+def _zero_one(v: np.ndarray) -> bool:
+    """Whether every value is 0 or 1 (one pass; no sort)."""
+    return bool(((v == 0.0) | (v == 1.0)).all())
+
+
+def _occupied(radix: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Sorted distinct codes and each row's index into them, as ``np.unique(..., return_inverse)``.
+
+    When the code space is small the occupied codes come from one ``np.bincount`` and a lookup
+    table (linear time); otherwise from ``np.unique`` (a sort).
+    """
+    top = int(radix.max()) + 1 if radix.size else 0
+    if 0 < top <= max(1 << 22, radix.size):
+        combos = np.flatnonzero(np.bincount(radix, minlength=top))
+        lookup = np.zeros(top, dtype=np.int64)
+        lookup[combos] = np.arange(len(combos))
+        return combos, lookup[radix]
+    combos, inverse = np.unique(radix, return_inverse=True)
+    return combos, inverse.reshape(-1)
+
+
 def _strata(
     df: pd.DataFrame, spec: Spec, w: np.ndarray | None = None
 ) -> tuple[np.ndarray, pd.DataFrame, list[str], dict]:
@@ -317,7 +338,7 @@ def _strata(
     radix = np.ones(n, dtype=np.int64) * 0
     for name in spec.strata:
         radix = radix * len(cats[name].categories) + cats[name].codes.astype(np.int64)
-    combos, stratum = np.unique(radix, return_inverse=True)
+    combos, stratum = _occupied(radix)
     labels = {}
     rest = combos.copy()
     for name in reversed(spec.strata):
@@ -400,7 +421,8 @@ def prepare(data: pd.DataFrame, spec: Spec) -> tuple[Prepared, Spec]:
         w = np.ones(len(df))
     a = _code_exposure(df[spec.exposure], spec)
     y, binary = _code_outcome(df[spec.outcome], spec.outcome)
-    if np.unique(y[w > 0]).size < 2:
+    kept = y[w > 0]
+    if kept.size == 0 or kept.min() == kept.max():
         raise OutcomeError(
             f"Outcome {spec.outcome!r} is constant ({_fmt(y[w > 0][0]) if (w > 0).any() else 'no rows'}); "
             "an effect cannot be estimated. Check the outcome column and the rows kept."
