@@ -25,11 +25,13 @@ from __future__ import annotations
 import numpy as np
 import pandas as pd
 from scipy import stats
+from scipy.special import expit
 
 from ..errors import ModifierError, SpecError
+from ..estimate import glm
 from ..frame import _used_columns, prepare
 from ..spec import Spec
-from .design import confounder_matrix, fit_glm, rcs_basis, rcs_knots
+from .design import confounder_matrix, rcs_basis, rcs_knots
 
 __all__ = ["effect_curve", "dr_pseudo_outcomes", "sandwich_ols"]
 
@@ -59,26 +61,31 @@ def sandwich_ols(y, x, w=None):
 
 
 def dr_pseudo_outcomes(a, y, w, x, binary: bool, folds: int, truncate: float, seed: int):
-    """Cross-fitted AIPW pseudo-outcomes (n,), and the share of propensities truncated."""
+    """Cross-fitted AIPW pseudo-outcomes (n,), the share of propensities truncated, failed fits."""
     n = len(y)
     rng = np.random.default_rng(seed)
     fold = rng.permutation(n) % folds if folds > 1 else np.zeros(n, dtype=int)
     pi = np.empty(n)
     mu1 = np.empty(n)
     mu0 = np.empty(n)
+    failed = 0
     for f in range(max(folds, 1)):
         test = fold == f
         train = ~test if folds > 1 else test
-        ps = fit_glm(a[train], x[train], w[train], binary=True)
-        pi[test] = ps.predict(x[test])
+        # the project's Newton/IRLS fits (stratagem.estimate.glm, tested equal to statsmodels GLM)
+        ps = glm.fit(x[train], a[train], w[train], family="binomial")
+        failed += not ps.converged
+        pi[test] = expit(x[test] @ ps.beta)
         for arm, out in ((1.0, mu1), (0.0, mu0)):
             rows = train & (a == arm)
-            model = fit_glm(y[rows], x[rows], w[rows], binary=binary)
-            out[test] = model.predict(x[test])
+            model = glm.fit(x[rows], y[rows], w[rows], family="binomial" if binary else "gaussian")
+            failed += not model.converged
+            eta = x[test] @ model.beta
+            out[test] = expit(eta) if binary else eta
     clipped = float(np.mean((pi < truncate) | (pi > 1 - truncate)))
     pi = np.clip(pi, truncate, 1 - truncate)
     phi = mu1 - mu0 + a * (y - mu1) / pi - (1 - a) * (y - mu0) / (1 - pi)
-    return phi, clipped
+    return phi, clipped, failed
 
 
 def effect_curve(
@@ -170,7 +177,7 @@ def effect_curve(
 
     nuis_knots = rcs_knots(v[w > 0], 4)
     x = np.column_stack([np.ones(len(y)), confounder_matrix(prep.confounders), rcs_basis(v, nuis_knots)])
-    phi, clipped = dr_pseudo_outcomes(a, y, w, x, prep.binary, folds, float(truncate), seed)
+    phi, clipped, failed = dr_pseudo_outcomes(a, y, w, x, prep.binary, folds, float(truncate), seed)
 
     if isinstance(knots, (int, np.integer)) and not isinstance(knots, bool):
         if knots == 0:
@@ -205,6 +212,8 @@ def effect_curve(
                           "ci_low": est - z * se, "ci_high": est + z * se,
                           "ci_low_simultaneous": est - crit * se, "ci_high_simultaneous": est + crit * se})
     notes = []
+    if failed:
+        notes.append(f"{failed} nuisance model fit(s) did not converge (separation?); check the curve.")
     if clipped > 0:
         notes.append(f"{100 * clipped:.1f}% of propensities truncated to [{truncate}, {1 - truncate}].")
     frame.attrs.update(
