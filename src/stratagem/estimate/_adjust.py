@@ -166,20 +166,24 @@ def _status(u: Unit, need_ps: bool, need_om: bool) -> str:
     return OK
 
 
+BOOT_TOL = 1e-6  # Newton converges quadratically: after a step this small the error is ~1e-12
+
+
 def _fit(u: Unit, need_ps: bool, need_om: bool, start_ps=None, start_om=None, ps_required=True) -> None:
     """Fit the unit's models for all its weight vectors; fill E, Q1, Q0, mu and ok."""
+    tol = 1e-10 if start_ps is None and start_om is None else BOOT_TOL
     B = u.W.shape[0]
     ok = np.ones(B, dtype=bool)
     n1 = u.W @ u.a
     ok &= (n1 > 0) & (u.W.sum(axis=1) - n1 > 0)
     if need_ps:
-        u.ps = glm.fit(u.Z, u.a, u.W, family="binomial", mask=u.ps_mask, beta0=start_ps)
+        u.ps = glm.fit(u.Z, u.a, u.W, family="binomial", mask=u.ps_mask, beta0=start_ps, tol=tol)
         u.E = expit(glm.linear_predictor(u.Z, u.ps.beta))
         if ps_required:
             ok &= u.ps.converged
     if need_om:
         family = "binomial" if u.binary else "gaussian"
-        u.om = glm.fit(u.Z, u.y, u.W, family=family, mask=u.mask, beta0=start_om)
+        u.om = glm.fit(u.Z, u.y, u.W, family=family, mask=u.mask, beta0=start_om, tol=tol)
         eta = glm.linear_predictor(u.Z, u.om.beta)
         ba = u.om.beta[:, -1:]
         eta1 = eta + ba * (1.0 - u.a)
@@ -396,6 +400,7 @@ def boot_means(prep: Prepared, spec: Spec, W: np.ndarray, unit_means, *, need_ps
     if start is None:
         estimator(prep, spec)
         start = _recall(prep, spec)
+    need_ps = need_ps and ps_required  # a propensity model only for the diagnostics is not refitted
     W = np.atleast_2d(np.asarray(W, dtype=float))
     B, n = W.shape
     K = prep.n_strata

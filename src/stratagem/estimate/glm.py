@@ -162,6 +162,8 @@ def fit(
         n_iter = 1
     else:
         active = np.ones(B, dtype=bool)
+        y_binary = bool(np.all((y == 0) | (y == 1)))
+        y_one = y == 1
         for it in range(max_iter):
             idx = np.flatnonzero(active)
             if idx.size == 0:
@@ -170,10 +172,14 @@ def fit(
             b = beta[idx]
             Wa = W[idx]
             eta = b @ X.T
-            mu, rest = expit(eta), expit(-eta)
-            S = Wa * (mu * rest)  # mu(1-mu) without cancellation near 0 or 1
+            mu = expit(eta)
+            rest = expit(np.negative(eta, out=eta), out=eta)  # 1 - mu, exact when mu rounds to 1
+            S = mu * rest
+            S *= Wa  # w mu (1 - mu)
             H = _crossprod(X, S, pairs)
-            g = (Wa * (y * rest - (1.0 - y) * mu)) @ X  # y - mu, exact when mu rounds to 1
+            r = np.where(y_one, rest, np.negative(mu, out=mu)) if y_binary else y * rest - (1.0 - y) * mu
+            r *= Wa  # w (y - mu)
+            g = r @ X
             step = _solve(H, g, M[idx])
             new = b + step
             beta[idx] = new
