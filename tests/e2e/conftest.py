@@ -2,8 +2,10 @@
 
 The server runs on 127.0.0.1 with a free port, a random token and temporary Jupyter config, data and
 runtime folders, so nothing of the user's own Jupyter set-up leaks in. Chromium is Debian's (found on
-PATH); Playwright never downloads a browser. Every request the browser makes to a host other than the
-loopback interface is aborted and recorded, so the whole suite also proves the widget works offline.
+PATH); Playwright never downloads a browser. JupyterLab is loaded once; each test opens its own
+notebook in it. The browser cannot leave the machine (its proxy is a closed loopback port, which
+loopback addresses bypass) and every attempt to reach another host is recorded, so the whole suite
+runs offline, as in a secure data enclave.
 """
 
 from __future__ import annotations
@@ -16,14 +18,16 @@ import signal
 import socket
 import subprocess
 import sys
+import threading
 import time
 import urllib.error
 import urllib.request
 from dataclasses import dataclass, field
 from pathlib import Path
-from urllib.parse import urlsplit
 
 import pytest
+
+from .helpers import is_loopback
 
 ARTIFACTS = Path(__file__).parent / "artifacts"
 
@@ -36,9 +40,6 @@ CHROMIUM_FLAGS = [
     "--disable-component-update",
     "--disable-sync",
 ]
-
-LOOPBACK_HOSTS = {"127.0.0.1", "localhost", "::1", "[::1]"}
-
 
 def _unavailable(reason: str):
     """Skip, or fail when the environment demands a browser (STRATAGEM_REQUIRE_BROWSER=1)."""
@@ -70,9 +71,6 @@ class LabServer:
         with urllib.request.urlopen(req, timeout=10) as resp:
             body = resp.read()
         return json.loads(body) if body else None
-
-    def lab_url(self, notebook: str, workspace: str) -> str:
-        return f"{self.url}/lab/workspaces/{workspace}/tree/{notebook}?reset&token={self.token}"
 
     def shutdown_kernels(self) -> None:
         """Delete every session (and so its kernel): keeps the 2-core machine free between tests."""
@@ -155,23 +153,16 @@ def lab_server(chromium_path, tmp_path_factory) -> LabServer:
 
 @dataclass
 class NetworkLog:
-    """Requests the browser attempted to non-loopback hosts (all aborted)."""
+    """Requests the browser made (or tried to make) to non-loopback hosts."""
 
-    blocked: list[str] = field(default_factory=list)
+    requests: list[str] = field(default_factory=list)
     websockets: list[str] = field(default_factory=list)
 
     def mark(self) -> tuple[int, int]:
-        return len(self.blocked), len(self.websockets)
+        return len(self.requests), len(self.websockets)
 
     def since(self, mark: tuple[int, int]) -> list[str]:
-        return self.blocked[mark[0]:] + self.websockets[mark[1]:]
-
-
-def is_loopback(url: str) -> bool:
-    parts = urlsplit(url)
-    if parts.scheme in ("data", "blob", "about", "chrome", "chrome-extension"):
-        return True
-    return (parts.hostname or "") in LOOPBACK_HOSTS
+        return self.requests[mark[0]:] + self.websockets[mark[1]:]
 
 
 @pytest.fixture(scope="session")
@@ -181,14 +172,9 @@ def network_log() -> NetworkLog:
 
 @pytest.fixture(scope="session")
 def browser_context(chromium_path, lab_server, network_log, tmp_path_factory):
+    """One chromium for the session, with no way out: its proxy is a closed loopback port (loopback
+    itself bypasses proxies), and every attempt to reach another host is recorded."""
     from playwright.sync_api import sync_playwright
-
-    def guard(route, request):
-        if is_loopback(request.url):
-            route.continue_()
-        else:
-            network_log.blocked.append(request.url)
-            route.abort("blockedbyclient")
 
     user_dir = tmp_path_factory.mktemp("chromium")
     with sync_playwright() as p:
@@ -196,10 +182,17 @@ def browser_context(chromium_path, lab_server, network_log, tmp_path_factory):
             str(user_dir),
             executable_path=chromium_path,
             headless=True,
-            args=CHROMIUM_FLAGS,
+            # Chromium's own proxy flags: Playwright's proxy option would also proxy loopback.
+            args=CHROMIUM_FLAGS + [f"--proxy-server=http://127.0.0.1:{_free_port()}",
+                                   "--proxy-bypass-list=127.0.0.1;localhost;[::1]"],
             viewport={"width": 1400, "height": 1000},
         )
-        context.route("**/*", guard)
+
+        def on_request(request):
+            if not is_loopback(request.url):
+                network_log.requests.append(request.url)
+
+        context.on("request", on_request)
         context.on("page", lambda page: page.on(
             "websocket",
             lambda ws: None if is_loopback(ws.url) else network_log.websockets.append(ws.url),
@@ -210,28 +203,50 @@ def browser_context(chromium_path, lab_server, network_log, tmp_path_factory):
             context.close()
 
 
-@pytest.fixture
-def page(browser_context, lab_server, request):
-    """A fresh page in the shared context; kernels are shut down after the test."""
+def _start_lab(page, server) -> None:
+    page.goto(f"{server.url}/lab/workspaces/e2e?reset&token={server.token}")
+    page.wait_for_function("() => window.jupyterapp && window.jupyterapp.shell && "
+                           "document.querySelector('.jp-LabShell') !== null", timeout=90_000)
+    page.wait_for_function("() => window.jupyterapp.serviceManager.isReady", timeout=60_000)
+
+
+@pytest.fixture(scope="session")
+def lab_page(browser_context, lab_server):
+    """JupyterLab loaded once for the session; tests open their notebooks in it."""
     pg = browser_context.new_page()
     pg.set_default_timeout(30_000)
     console: list[str] = []
-    pg.on("console", lambda m: console.append(f"{m.type}: {m.text}") if m.type in ("error",) else None)
+    pg.on("console", lambda m: console.append(f"{m.type}: {m.text}") if m.type == "error" else None)
     pg.on("pageerror", lambda e: console.append(f"pageerror: {e}"))
-    pg.sg_console = console  # read by tests when they want to explain a failure
+    pg.sg_console = console  # read by tests to explain a failure
+    _start_lab(pg, lab_server)
+    yield pg
+    pg.close()
+
+
+@pytest.fixture
+def page(lab_page, lab_server, request):
+    """The session's JupyterLab page, with no document open; after the test its documents are
+    closed and its kernels shut down (in the background, so the next test need not wait)."""
+    yield lab_page
+    failed = getattr(request.node, "rep_call", None) is not None and request.node.rep_call.failed
+    if failed:
+        ARTIFACTS.mkdir(exist_ok=True)
+        shot = ARTIFACTS / f"failed-{request.node.name}.png"
+        try:
+            lab_page.screenshot(path=str(shot))
+            print(f"\nscreenshot of the failure: {shot}\nbrowser errors: {lab_page.sg_console[-10:]}")
+        except Exception:  # noqa: BLE001 - a screenshot is a courtesy, never the failure
+            pass
     try:
-        yield pg
-    finally:
-        if request.node.rep_call.failed if hasattr(request.node, "rep_call") else False:
-            ARTIFACTS.mkdir(exist_ok=True)
-            shot = ARTIFACTS / f"failed-{request.node.name}.png"
-            try:
-                pg.screenshot(path=str(shot), full_page=True)
-                print(f"\nscreenshot of the failure: {shot}\nbrowser console errors: {console[-20:]}")
-            except Exception:  # noqa: BLE001 - a screenshot is a courtesy, never the failure
-                pass
-        pg.close()
-        lab_server.shutdown_kernels()
+        lab_page.unroute_all(behavior="ignoreErrors")
+        lab_page.evaluate("() => { for (const w of Array.from(window.jupyterapp.shell.widgets('main')))"
+                          " w.dispose(); }")
+    except Exception:  # noqa: BLE001 - a broken page is rebuilt below
+        failed = True
+    threading.Thread(target=lab_server.shutdown_kernels, daemon=True).start()
+    if failed:
+        _start_lab(lab_page, lab_server)
 
 
 @pytest.hookimpl(hookwrapper=True, tryfirst=True)

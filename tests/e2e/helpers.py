@@ -4,13 +4,27 @@ from __future__ import annotations
 
 import json
 import math
+import re
 import time
-import uuid
 from pathlib import Path
+from urllib.parse import urlsplit
 
 import nbformat
 
 ROOT = ".sg-explorer"
+LOOPBACK_HOSTS = {"127.0.0.1", "localhost", "::1", "[::1]"}
+
+
+def is_loopback(url: str) -> bool:
+    parts = urlsplit(url)
+    if parts.scheme in ("data", "blob", "about", "chrome", "chrome-extension", "devtools"):
+        return True
+    return (parts.hostname or "") in LOOPBACK_HOSTS
+
+
+# Every http(s)/ws(s) URL whose host is not the loopback interface (matched inside Playwright's
+# driver, so loopback requests never make a round trip to this process).
+NON_LOOPBACK = re.compile(r"^(?!(?:https?|wss?)://(?:127\.0\.0\.1|localhost|\[::1\])(?::\d+)?(?:/|$))[a-z]+://")
 
 
 def write_notebook(folder: Path, name: str, cells: list[str]) -> str:
@@ -24,17 +38,17 @@ def write_notebook(folder: Path, name: str, cells: list[str]) -> str:
 
 
 def open_and_run(page, server, notebook: str, *, timeout: float = 90_000) -> None:
-    """Open the notebook in a fresh workspace, wait for its kernel, then run every cell.
+    """Open the notebook in the session's JupyterLab, wait for its kernel, then run every cell.
 
     Waits for the session to be ready and the kernel idle before running: the toolbar's indicator
     says idle before the kernel session exists, and "run all" would then open a kernel picker.
     """
-    page.goto(server.lab_url(notebook, workspace=f"w{uuid.uuid4().hex[:8]}"))
+    page.evaluate("(path) => window.jupyterapp.commands.execute('docmanager:open', "
+                  "{path, factory: 'Notebook'})", notebook)
     page.wait_for_function(
         """(name) => {
-            const app = window.jupyterapp;
-            const w = app && app.shell && app.shell.currentWidget;
-            if (!w || !w.sessionContext || !w.context || !w.context.path.endsWith(name)) return false;
+            const w = window.jupyterapp.shell.currentWidget;
+            if (!w || !w.sessionContext || !w.context || w.context.path !== name) return false;
             const s = w.sessionContext;
             return s.isReady && s.session && s.session.kernel && s.session.kernel.status === 'idle';
         }""",

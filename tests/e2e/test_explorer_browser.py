@@ -185,12 +185,15 @@ def test_drag_keyboard_measure_remove_and_saved_snapshot(page, lab_server, artif
 
 
 def _arm_latency(root, want_labels):
-    """Start a timer at the next drop/keydown/click inside the widget; resolve when the plot shows
-    exactly ``want_labels`` and a frame has been painted."""
+    """Start a timer at the next drop/keydown/click in the widget's notebook cell; resolve, after the
+    next painted frame, when the cell's plot shows exactly ``want_labels`` and no work is running.
+
+    The cell, not the widget's element, is watched: a new result may rebuild the whole view.
+    """
     root.evaluate(
         """(root, want) => {
             const key = JSON.stringify([...want].sort());
-            const host = root.parentElement;
+            const host = root.closest('.jp-Cell') || document.body;
             const labels = () => {
                 const r = host.querySelector('.sg-explorer');
                 return JSON.stringify(Array.from(
@@ -204,8 +207,12 @@ def _arm_latency(root, want_labels):
             window.__sg_wait = new Promise((resolve, reject) => {
                 const done = (fn) => { obs.disconnect(); clearTimeout(timer);
                     for (const t of types) host.removeEventListener(t, start, true); fn(); };
+                const running = () => {
+                    const r = host.querySelector('.sg-explorer');
+                    return !r || r.classList.contains('sg-running');
+                };
                 const check = () => {
-                    if (t0 !== null && labels() === key) {
+                    if (t0 !== null && labels() === key && !running()) {
                         done(() => requestAnimationFrame(() => resolve(performance.now() - t0)));
                     }
                 };
@@ -213,7 +220,8 @@ def _arm_latency(root, want_labels):
                 obs.observe(host, {subtree: true, childList: true, attributes: true,
                                    characterData: true});
                 const timer = setTimeout(() => done(() => reject(new Error(
-                    'plot never showed ' + key + '; it shows ' + labels()))), 60000);
+                    (t0 === null ? 'no drop/key/click seen; ' : '') + 'plot never showed ' + key
+                    + '; it shows ' + labels()))), 60000);
             });
         }""",
         sorted(want_labels),
@@ -232,23 +240,26 @@ def test_latency_drop_to_plot(page, lab_server, artifacts):
     wait_rendered(page, 0)
     wait_rendered(page, 1)
     figures = {}
-    for nth, label in ((0, "demo, 4,000 rows"), (1, "100,000 rows")):
+    # Repetitions: the first of each is a warm-up and left out of the median.
+    for nth, label, reps in ((0, "demo, 4,000 rows", 6), (1, "100,000 rows", 4)):
         root = page.locator(ROOT).nth(nth)
         root.locator("svg.sg-forest g.sg-row[data-stratum]").first.wait_for(timeout=120_000)
         drops, removals = [], []
         levels = ["lives_alone=no", "lives_alone=yes", "overall"]
-        for _ in range(6):
+        for _ in range(reps):
             _arm_latency(root, levels)
             chip(page, "lives_alone", nth=nth).drag_to(root.locator(".sg-zone"))
             drops.append(page.evaluate("() => window.__sg_wait"))
+            page.wait_for_timeout(500)  # let the snapshot update rebuild the view before acting again
             _arm_latency(root, ["overall"])
             root.locator('.sg-zone .sg-chip[data-column="lives_alone"] .sg-remove').click()
             removals.append(page.evaluate("() => window.__sg_wait"))
+            page.wait_for_timeout(500)
         figures[label] = {"drop_ms": drops, "remove_ms": removals,
                           "median_drop_ms": statistics.median(drops[1:]),
                           "median_remove_ms": statistics.median(removals[1:])}
     (artifacts / "latency.json").write_text(json.dumps({"method": method, **figures}, indent=1))
-    print(f"\nExplorer latency, method={method}, Wald intervals (first of 6 dropped as warm-up):")
+    print(f"\nExplorer latency, method={method}, Wald intervals (first of each left out as warm-up):")
     for label, f in figures.items():
         print(f"  {label:>17}: drop -> plot median {f['median_drop_ms']:.0f} ms "
               f"(all {[round(x) for x in f['drop_ms']]}); removal -> plot median "
@@ -311,3 +322,43 @@ def test_light_and_dark_theme(page, lab_server, artifacts):
     for theme in (light, dark):
         ratio = _contrast(theme["cell"], theme["background"])
         assert ratio >= 4.5, f"table text contrast {ratio:.1f} < 4.5 in {theme}"
+
+
+# Defect seen 2026-12 in the widget (widgets/explorer.py + js/explorer.js): every new result calls
+# update_display for the text/html snapshot, and JupyterLab then re-creates the widget's view from
+# scratch (the .sg-explorer element is replaced). Focus falls back to the notebook cell (so the next
+# Enter or arrow key drives the notebook, not the widget) and the view resets to "Effects". A fix:
+# keep the open view in a trait (or the model) and refocus the chip with the same data-column after
+# a re-render, or refresh the snapshot without re-rendering the live view.
+@pytest.mark.xfail(reason="a new result re-creates the view: focus and the open view are lost",
+                   strict=False)
+def test_focus_and_view_survive_a_recompute(page, lab_server):
+    """Keyboard users keep their place: after Enter adds a modifier, focus stays in the widget, and
+    a control changed while another view is open leaves that view open."""
+    method = "crude"
+    name = write_notebook(lab_server.root, "explorer_state", [
+        "import stratagem as sg\ndf = sg.demo_data()",
+        explorer_cell("df", method, measure="rd"),
+    ])
+    open_and_run(page, lab_server, name)
+    root = wait_rendered(page)
+    chip(page, "sex").focus()
+    page.keyboard.press("Enter")
+    want = expected_rows(sg.analyze(demo(), **spec_fields(method, strata=("sex",), measure="rd")))
+    wait_for_table(page, want)
+    page.wait_for_timeout(1000)  # let the snapshot update (if any) land
+    inside = page.evaluate("(sel) => !!document.activeElement.closest(sel)", ROOT)
+    focused = page.evaluate("() => document.activeElement.outerHTML.slice(0, 100)")
+    root.locator('[data-view="checks"]').click()
+    root.locator('select[data-control="level"]').select_option("0.9")
+    want = expected_rows(sg.analyze(demo(), **spec_fields(method, strata=("sex",), measure="rd",
+                                                          level=0.9)))
+    wait_for_table(page, want)
+    page.wait_for_timeout(1000)
+    shown = root.locator(".sg-pane:not([hidden])").get_attribute("data-pane")
+    problems = []
+    if not inside:
+        problems.append(f"after Enter on a chip, keyboard focus left the widget for {focused!r}")
+    if shown != "checks":
+        problems.append(f"changing the level switched the view from 'checks' to {shown!r}")
+    assert not problems, "; ".join(problems)
