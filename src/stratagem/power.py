@@ -42,10 +42,12 @@ __all__ = [
     "simulate_power",
     "SimulatedPower",
     "MAX_DRAWS",
+    "ROWS_PER_BATCH",
 ]
 
 SCALES = ("additive", "multiplicative")
 MAX_DRAWS = 5000  # bound on simulate_power's repeated analyses
+ROWS_PER_BATCH = 400_000  # simulated studies are stacked into tables of about this many rows
 
 
 # -- validation ------------------------------------------------------------------------------------
@@ -373,7 +375,10 @@ def simulate_power(
     from response types giving the design's risks, or normal outcomes with ``sd``), analysed with
     :func:`stratagem.analyze` (``method="crude"``, measure ``rd``, ``or`` or ``md``); the stratum
     estimates and standard errors then go into the same Wald test of equal effects. Stratum sizes
-    vary from draw to draw (multinomial), as they would in a real study.
+    vary from draw to draw (multinomial), as they would in a real study. For speed, up to about
+    :data:`ROWS_PER_BATCH` rows of independent studies are simulated and analysed together,
+    stratified by (draw, subgroup): crude stratum estimates use only their own rows, so each
+    draw's estimates equal those of analysing it alone.
 
     Parameters
     ----------
@@ -405,8 +410,8 @@ def simulate_power(
     levels = [str(i + 1) for i in range(k)]
     total = int(round(d.size))
     kwargs = dict(
-        modifiers={"stratum": dict(zip(levels, d.shares.tolist()))},
-        by=("stratum",),
+        modifiers={"subgroup": dict(zip(levels, d.shares.tolist()))},
+        by=("subgroup",),
         confounding=0.0,
         randomised=True,
         exposed_share=float(exposed_share),
@@ -421,25 +426,19 @@ def simulate_power(
         kwargs.update(outcome="numeric", effects=dict(zip(levels, d.theta.tolist())),
                       noise_sd=float(sds[0]))
         measure = "md"
-    states = np.random.SeedSequence(seed).generate_state(draws)
+    per_batch = max(1, min(int(draws), ROWS_PER_BATCH // max(total, 1)))
+    sizes_ = [per_batch] * (int(draws) // per_batch) + ([int(draws) % per_batch] if draws % per_batch else [])
+    states = np.random.SeedSequence(seed).generate_state(len(sizes_))
     crit = stats.chi2.ppf(1 - alpha, k - 1)
-    usable = rejected = 0
-    for i, state in enumerate(states):
-        frame = simulate(total, seed=int(state), **kwargs)
-        if frame["stratum"].nunique() < k:
-            continue
-        a = analyze(frame, exposure="exposed", outcome="outcome", strata=("stratum",),
-                    method="crude", measure=measure)
-        if (a.strata["status"] != "ok").any():
-            continue
-        est = a.strata["estimate"].to_numpy(dtype=float)
-        theta = np.log(est) if measure == "or" else est
-        w = 1.0 / a.strata["se"].to_numpy(dtype=float) ** 2
-        q = np.sum(w * (theta - np.sum(w * theta) / np.sum(w)) ** 2)
-        usable += 1
-        rejected += int(q > crit)
+    usable = rejected = done = 0
+    for b, state in zip(sizes_, states):
+        frame = _draw_batch(simulate, total, b, int(state), kwargs)
+        a = analyze(frame, exposure="exposed", outcome="outcome", strata=("draw", "subgroup"),
+                    method="crude", measure=measure, max_levels=max(b, k, 2))
+        u, r = _count_rejections(a.strata, k, measure, crit)
+        usable, rejected, done = usable + u, rejected + r, done + b
         if progress is not None:
-            progress((i + 1) / draws)
+            progress(done / draws)
     if usable == 0:
         raise SpecError(
             "No simulated study had every stratum estimable; the design is too small. Increase n."
@@ -453,6 +452,36 @@ def simulate_power(
         usable=usable,
         rejected=rejected,
     )
+
+
+def _draw_batch(simulate, total: int, b: int, state: int, kwargs: dict):
+    """``b`` independent studies of ``total`` people each, stacked, with a ``draw`` label column.
+
+    People are drawn independently, so consecutive blocks of one population of ``b * total`` are
+    ``b`` independent studies of the design.
+    """
+    frame = simulate(total * b, seed=state, **kwargs)
+    width = len(str(b - 1))
+    labels = np.array([str(i).zfill(width) for i in range(b)], dtype=object)
+    frame["draw"] = np.repeat(labels, total)
+    return frame
+
+
+def _count_rejections(strata, k: int, measure: str, crit: float) -> tuple[int, int]:
+    """Usable draws (all k subgroups present and estimable) and rejections of equal effects.
+
+    One crude analysis stratified by (draw, subgroup) gives, for every draw, exactly the stratum
+    estimates of analysing that draw alone: crude stratum estimates use only the stratum's rows.
+    """
+    ok = strata["status"].eq("ok").groupby(strata["draw"]).agg(["sum", "size"])
+    good = ok.index[(ok["sum"] == k) & (ok["size"] == k)]
+    rows = strata[strata["draw"].isin(good)]
+    est = rows["estimate"].to_numpy(dtype=float).reshape(-1, k)
+    theta = np.log(est) if measure == "or" else est
+    w = 1.0 / rows["se"].to_numpy(dtype=float).reshape(-1, k) ** 2
+    bar = np.sum(w * theta, axis=1, keepdims=True) / np.sum(w, axis=1, keepdims=True)
+    q = np.sum(w * (theta - bar) ** 2, axis=1)
+    return int(len(good)), int(np.sum(q > crit))
 
 
 def _types(p0: float, p1: float) -> dict:
