@@ -141,7 +141,10 @@ def transport(
     strata independent (``sum_k p_k^2 Var_k``), and, when the target is a sample of ``N``
     individuals, the multinomial variance of its shares, ``Cov(p) = (diag(p) - p p') / N``.
     The interval is a Wald interval on the analysis scale (log scale for ratios). For an analysis
-    with bootstrap intervals the stratum covariances are those of its bootstrap replicates.
+    with bootstrap intervals the stratum covariances are those of its bootstrap replicates. For a
+    ratio measure the variance comes from the covariance of the stratum means the estimator
+    reports; with Mantel-Haenszel, whose stratum ratios have their own variance formula, a target
+    made of one stratum can therefore show a slightly different se from that stratum's row.
 
     Parameters
     ----------
