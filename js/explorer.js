@@ -13,12 +13,12 @@ const SVG = "http://www.w3.org/2000/svg";
 const DRAG_TYPE = "application/x-stratagem-column";
 
 export const METHODS = [
-  ["crude", "crude (no adjustment)"],
+  ["crude", "crude"],
   ["mantel-haenszel", "Mantel-Haenszel"],
-  ["standardization", "standardization (g-formula)"],
-  ["ipw", "inverse probability weighting"],
-  ["aipw", "augmented IPW"],
-  ["exact", "exact (known potential outcomes)"],
+  ["standardization", "standardization"],
+  ["ipw", "IPW"],
+  ["aipw", "AIPW"],
+  ["exact", "exact"],
 ];
 const BINARY_MEASURES = [
   ["rd", "risk difference"],
@@ -33,13 +33,15 @@ const VIEWS = [
   ["checks", "Checks"],
   ["code", "Code"],
 ];
+// The interval plot is a table cell spanning every body row, placed after PLOT_AFTER.
+const PLOT_AFTER = "mean_unexposed";
 const TABLE_FIELDS = [
   ["stratum", "stratum"],
   ["n", "n"],
-  ["n_exposed", "exposed"],
-  ["n_unexposed", "unexposed"],
-  ["mean_exposed", "mean if exposed"],
-  ["mean_unexposed", "mean if unexposed"],
+  ["n_exposed", "n exp."],
+  ["n_unexposed", "n unexp."],
+  ["mean_exposed", "mean exp."],
+  ["mean_unexposed", "mean unexp."],
   ["estimate", "estimate"],
   ["ci_low", "lower"],
   ["ci_high", "upper"],
@@ -49,8 +51,9 @@ const TABLE_FIELDS = [
 const COUNT_FIELDS = new Set(["n", "n_exposed", "n_unexposed"]);
 const TYPES = ["doomed", "causal", "preventive", "immune"];
 export const ROW_H = 28; // table rows and plot rows share this height (px)
-export const HEAD_H = 30; // table header and plot header share this height (px)
-const PLOT_W = 300;
+export const HEAD_H = 0; // the plot starts at the first body row (its axis sits in the header)
+const AXIS_H = 34; // height of the axis drawn in the table header (px)
+const PLOT_W = 200;
 const PAD = 10;
 
 // ---------------------------------------------------------------------------------------------
@@ -516,31 +519,50 @@ function render({ model, el }) {
     const table = h("table");
     const thead = h("thead");
     const hr = h("tr");
-    for (const [, label] of TABLE_FIELDS) hr.append(h("th", { scope: "col" }, label));
+    const plot = drawPlot(result);
+    const modifiers = result.modifiers || [];
+    table.classList.toggle("sg-all-ok", rows.every((r) => r.status === "ok"));
+    for (const [field, fieldLabel] of TABLE_FIELDS) {
+      // The stratum column is headed by the modifiers and shows each row's levels (compact).
+      const label = field === "stratum" && modifiers.length ? modifiers.join(" · ") : fieldLabel;
+      hr.append(h("th", { scope: "col", class: COUNT_FIELDS.has(field) || field.startsWith("mean") || field.startsWith("ci") || field === "estimate" || field === "p_value" ? "sg-num" : "" }, label));
+      if (field === PLOT_AFTER) {
+        const th = h("th", { class: "sg-plot-head", scope: "col" });
+        th.append(plot.axisSvg);
+        hr.append(th);
+      }
+    }
     thead.append(hr);
     const tbody = h("tbody");
-    for (const row of rows) {
+    rows.forEach((row, i) => {
       const tr = h("tr", { "data-stratum": String(row.stratum) });
       if (row.stratum === "overall") tr.classList.add("sg-overall");
       if (row.status !== "ok") tr.classList.add("sg-not-estimable");
       for (const [field] of TABLE_FIELDS) {
         const v = row[field];
         const td = h("td", { "data-field": field });
-        if (field === "stratum" || field === "status") {
+        if (field === "stratum") {
+          const levels = modifiers.map((m) => String((row.levels || {})[m] ?? ""));
+          td.textContent = row.stratum === "overall" || !modifiers.length ? String(v ?? "") : levels.join(" · ");
+          td.setAttribute("title", String(v ?? ""));
+        } else if (field === "status") {
           td.textContent = String(v ?? "");
         } else {
-          td.textContent = COUNT_FIELDS.has(field) ? fmtCount(v) : fmt(v);
+          td.textContent = COUNT_FIELDS.has(field) ? fmtCount(v) : field === "p_value" ? fmtP(v).replace("p = ", "").replace("p < ", "<") : fmt(v);
           td.setAttribute("data-value", v === null || v === undefined ? "" : String(v));
           td.classList.add("sg-num");
         }
         tr.append(td);
+        if (field === PLOT_AFTER && i === 0) {
+          const cell = h("td", { class: "sg-plot-cell", rowspan: String(rows.length) });
+          cell.append(plot.svg);
+          tr.append(cell);
+        }
       }
       tbody.append(tr);
-    }
+    });
     table.append(thead, tbody);
-    const tableBox = h("div", { class: "sg-table-box" });
-    tableBox.append(table);
-    wrap.append(tableBox, drawPlot(result));
+    wrap.append(table);
     effects.append(wrap, h("p", { class: "sg-het" }, heterogeneityLine(result)));
     const tests = result.heterogeneity || [];
     if (tests.length) {
@@ -561,28 +583,27 @@ function render({ model, el }) {
 
   function drawPlot(result) {
     const rows = result.rows || [];
-    const height = HEAD_H + ROW_H * rows.length + 26;
-    const svg = s("svg", {
-      class: "sg-forest",
-      width: PLOT_W,
-      height,
-      viewBox: `0 0 ${PLOT_W} ${height}`,
-      role: "img",
-    });
+    const height = HEAD_H + ROW_H * rows.length;
+    const svg = s("svg", { class: "sg-forest", width: PLOT_W, height, viewBox: `0 0 ${PLOT_W} ${height}`, role: "img" });
     svg.setAttribute("aria-label", `${result.measure_name} by stratum with intervals`);
+    const axisSvg = s("svg", { class: "sg-axis", width: PLOT_W, height: AXIS_H, viewBox: `0 0 ${PLOT_W} ${AXIS_H}`, "aria-hidden": "true" });
     const left = PAD;
     const right = PLOT_W - PAD;
     const ax = axis(rows, !!result.ratio, result.null, left, right);
     const bottom = HEAD_H + ROW_H * rows.length;
-    svg.append(s("text", { class: "sg-axis-title", x: PLOT_W / 2, y: HEAD_H - 10, "text-anchor": "middle" },
+    axisSvg.append(s("text", { class: "sg-axis-title", x: PLOT_W / 2, y: 12, "text-anchor": "middle" },
       `${result.measure_name}${result.ratio ? " (log scale)" : ""}`));
-    const xn = ax.x(result.null);
     for (const tick of ax.ticks) {
       const xt = ax.x(tick);
-      svg.append(s("line", { class: "sg-tick", x1: xt, x2: xt, y1: HEAD_H, y2: bottom + 4 }));
-      svg.append(s("text", { class: "sg-tick-label", x: xt, y: bottom + 17, "text-anchor": "middle" }, String(tick)));
+      axisSvg.append(s("text", { class: "sg-tick-label", x: xt, y: AXIS_H - 8, "text-anchor": "middle" }, String(tick)));
+      axisSvg.append(s("line", { class: "sg-tick", x1: xt, x2: xt, y1: AXIS_H - 4, y2: AXIS_H }));
+      svg.append(s("line", { class: "sg-tick", x1: xt, x2: xt, y1: 0, y2: bottom }));
     }
-    svg.append(s("line", { class: "sg-null", x1: xn, x2: xn, y1: HEAD_H - 4, y2: bottom }));
+    const xn = ax.x(result.null);
+    svg.append(s("line", { class: "sg-null", x1: xn, x2: xn, y1: 0, y2: bottom }));
+    // The axis title is also kept in the plot itself for assistive technology and tests.
+    svg.append(s("title", {}, `${result.measure_name}${result.ratio ? " (log scale)" : ""}`));
+    svg.querySelector("title").setAttribute("class", "sg-axis-title");
     rows.forEach((row, i) => {
       const cy = HEAD_H + ROW_H * i + ROW_H / 2;
       const g = s("g", { class: "sg-row", "data-stratum": String(row.stratum) });
@@ -607,7 +628,7 @@ function render({ model, el }) {
       }
       svg.append(g);
     });
-    return svg;
+    return { svg, axisSvg };
   }
 
   function drawTypes(result) {

@@ -205,6 +205,11 @@ test("plot geometry: ratio axis is logarithmic with the null line at 1", () => {
   const x1 = Number(svg.querySelector("line.sg-null").getAttribute("x1"));
   assert.ok(Math.abs(x1 - axis(rows, true, 1, 10, w - 10).x(1)) < 1e-9);
   assert.match(svg.querySelector(".sg-axis-title").textContent, /log scale/);
+  assert.match(root.querySelector("svg.sg-axis .sg-axis-title").textContent, /log scale/);
+  // the plot is one cell spanning every body row, so plot rows and table rows line up
+  const cell = root.querySelector(".sg-effects tbody td.sg-plot-cell");
+  assert.equal(cell.getAttribute("rowspan"), "2");
+  assert.equal(Number(svg.getAttribute("height")), 2 * ROW_H);
 });
 
 test("niceTicks uses steps of 1, 2 or 5", () => {
@@ -223,6 +228,7 @@ test("escaping: a hostile column name and level appear as text, no element is cr
     strata: [HOSTILE],
     _result: result(rows, {
       modifiers: [HOSTILE],
+      rows: [row(label, { levels: { [HOSTILE]: "<b>x</b>" } }), row("overall")],
       notes: [`note ${HOSTILE}`],
       diagnostics: [{ stratum: label, check: "positivity", arm: "exposed", value: 0.1, warning: HOSTILE }],
       response_types: [{ stratum: label, type: "causal", lower: 0.1, upper: 0.2 }],
@@ -235,7 +241,10 @@ test("escaping: a hostile column name and level appear as text, no element is cr
   assert.equal(chip.getAttribute("data-column"), HOSTILE);
   assert.equal(chip.querySelector(".sg-name").textContent, HOSTILE);
   assert.equal(root.querySelector(".sg-zone .sg-chip .sg-name").textContent, HOSTILE);
-  assert.equal(root.querySelector('.sg-effects tbody tr td[data-field="stratum"]').textContent, label);
+  const first = root.querySelector('.sg-effects tbody tr td[data-field="stratum"]');
+  assert.equal(first.getAttribute("title"), label);
+  assert.equal(first.textContent, "<b>x</b>"); // the level, as text
+  assert.equal(root.querySelector(".sg-effects thead th").textContent, HOSTILE);
   assert.equal(root.querySelector(".sg-message").textContent, HOSTILE);
   assert.ok(root.textContent.includes(`note ${HOSTILE}`));
   // querying by the attribute value finds the row: the label was stored verbatim
