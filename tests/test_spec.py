@@ -86,3 +86,8 @@ def test_replace_returns_new_spec_and_validates():
 def test_from_json_rejects_garbage_with_advice():
     with pytest.raises(SpecError, match="Spec.to_json"):
         Spec.from_json("{not json")
+
+
+def test_modifier_named_like_a_result_column_is_refused():
+    with pytest.raises(SpecError, match=r"\['stratum'\].*rename them.*'stratum_group'"):
+        Spec(exposure="a", outcome="y", strata=("stratum",))

@@ -20,6 +20,12 @@ METHODS = ("crude", "mantel-haenszel", "standardization", "ipw", "aipw", "exact"
 MEASURES = ("rd", "rr", "or", "md")
 INTERVALS = ("wald", "bootstrap")
 MISSING = ("drop", "raise")
+# Columns of Analysis.strata that a modifier's own column must not shadow.
+RESERVED = (
+    "stratum", "n", "n_exposed", "n_unexposed", "mean_exposed", "mean_unexposed", "estimate", "se",
+    "ci_low", "ci_high", "p_value", "status", "p_holm", "p_bh", "ci_low_simultaneous",
+    "ci_high_simultaneous", "e_value", "e_value_ci",
+)
 
 
 def _is_name(value: Any) -> bool:
@@ -232,6 +238,13 @@ class Spec:
             dup = sorted({n for n in names if names.count(n) > 1})
             if dup:
                 raise SpecError(f"{role} names {dup} more than once; list each column once.")
+        clash = [name for name in self.strata if name in RESERVED]
+        if clash:
+            raise SpecError(
+                f"Modifier column(s) {clash} have the same name as a column of the results table "
+                f"({', '.join(RESERVED)}); rename them in a copy of the data, e.g. "
+                f"df.rename(columns={{{clash[0]!r}: {clash[0] + '_group'!r}}})."
+            )
         for name in self.bins:
             if name not in self.strata:
                 raise SpecError(
