@@ -46,37 +46,44 @@ def make_table(n: int, random_state: int = 0) -> pd.DataFrame:
     })
 
 
-def best_of(f, repeat: int = 3) -> float:
-    times = []
-    for _ in range(repeat):
-        t = time.perf_counter()
-        f()
-        times.append(time.perf_counter() - t)
-    return min(times)
-
-
-def main(n: int = 10_000_000) -> None:
+def main(n: int = 10_000_000, rounds: int = 3) -> None:
+    """Time every contender once per round, interleaved with the baseline, and print the best time
+    and the median of the per-round ratios (robust when other work shares the machine)."""
     df = make_table(n)
     fields = dict(exposure="treated", outcome="event", strata=("sex", "smoker"),
                   confounders=("region", "age_group"), measure="rd")
     columns = ["treated", "event", "sex", "smoker", "region", "age_group"]
-    base = best_of(lambda: df.groupby(columns, observed=True).size())
-    print(f"n = {n:,}; modifiers sex x smoker (6 strata); confounders region x age_group (30 cells)")
-    print(f"{'pandas group-by count':<32}{base:8.3f} s   1.00x")
-    rows = []
-    for method in ("crude", "mantel-haenszel"):
-        t = best_of(lambda: sg.analyze(df, method=method, **fields))
-        rows.append((f"analyze {method}", t))
     spec = Spec(method="mantel-haenszel", **fields)
-    t = best_of(lambda: prepare(df, spec))
-    rows.append(("prepare", t))
-    for method in ("crude", "mantel-haenszel"):
-        prep, resolved = prepare(df, spec.replace(method=method))
+    prepared = {m: prepare(df, spec.replace(method=m)) for m in ("crude", "mantel-haenszel")}
+
+    def estimator(method):
+        prep, resolved = prepared[method]
         est = get_estimator(method)
-        t = best_of(lambda: est(prep, resolved))
-        rows.append((f"estimator {method}", t))
-    for name, t in rows:
-        print(f"{name:<32}{t:8.3f} s {t / base:6.2f}x")
+        return lambda: est(prep, resolved)
+
+    contenders = {
+        "analyze crude": lambda: sg.analyze(df, method="crude", **fields),
+        "analyze mantel-haenszel": lambda: sg.analyze(df, method="mantel-haenszel", **fields),
+        "prepare": lambda: prepare(df, spec),
+        "estimator crude": estimator("crude"),
+        "estimator mantel-haenszel": estimator("mantel-haenszel"),
+    }
+    base_times, times = [], {name: [] for name in contenders}
+    for _ in range(rounds):
+        for name, f in contenders.items():
+            t = time.perf_counter()
+            df.groupby(columns, observed=True).size()
+            base_times.append(time.perf_counter() - t)
+            t = time.perf_counter()
+            f()
+            times[name].append(time.perf_counter() - t)
+    base = np.array(base_times).reshape(rounds, len(contenders))
+    print(f"n = {n:,}; modifiers sex x smoker (6 strata); confounders region x age_group (30 cells)")
+    print(f"{'':<28}{'best s':>8}{'ratio':>8}   (ratio: median over rounds of time / the group-by just before)")
+    print(f"{'pandas group-by count':<28}{base.min():8.3f}{1.0:8.2f}")
+    for j, (name, ts) in enumerate(times.items()):
+        ratio = np.median(np.array(ts) / base[:, j])
+        print(f"{name:<28}{min(ts):8.3f}{ratio:8.2f}")
 
 
 if __name__ == "__main__":
