@@ -10,9 +10,12 @@ from __future__ import annotations
 from . import errors
 from .analysis import analyze
 from .errors import StratagemError
+from .modify import effect_curve, evalue, reri, response_type_bounds
+from .power import power_modification, sample_size_modification, simulate_power
 from .results import CAUTION, Analysis
 from .simulate import DEMO_DESCRIPTION, demo_data, simulate
 from .spec import Spec
+from .transport import transport
 
 __version__ = "0.1.0"
 
@@ -24,15 +27,23 @@ __all__ = [
     "StratagemError",
     "analyze",
     "demo_data",
+    "effect_curve",
     "errors",
+    "evalue",
+    "power_modification",
+    "reri",
+    "response_type_bounds",
+    "sample_size_modification",
     "simulate",
+    "simulate_power",
+    "transport",
     "__version__",
 ]
 
 
 def __getattr__(name: str):
     # Widgets import anywidget and the front-end files; load them only when asked for.
-    if name in ("Explorer",):
+    if name in ("Explorer", "SimulationLab"):
         from . import widgets
 
         return getattr(widgets, name)
