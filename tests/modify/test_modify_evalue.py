@@ -57,3 +57,22 @@ def test_errors_name_the_parameter():
         evalue(2.0, measure="or", baseline_risk=1.5)
     with pytest.raises(SpecError, match="ci_low"):
         evalue(2.0, 3.0, 1.0)
+
+
+def test_evalue_columns_in_analysis(demo):
+    import numpy as np
+
+    import stratagem as sg
+
+    for measure in ("rr", "rd", "or"):
+        a = sg.analyze(demo, exposure="visited", outcome="on_target", strata=("insulin",),
+                       method="crude", measure=measure)
+        for _, row in a.strata.iterrows():
+            ref = evalue(row["estimate"], row["ci_low"], row["ci_high"], measure=measure,
+                         baseline_risk=row["mean_unexposed"])
+            assert row["e_value"] == pytest.approx(ref.estimate)
+            assert row["e_value_ci"] == pytest.approx(ref.ci)
+        o = a.overall
+        assert o["e_value"] == pytest.approx(evalue(o["estimate"], o["ci_low"], o["ci_high"], measure=measure,
+                                                    baseline_risk=o["mean_unexposed"]).estimate)
+        assert np.all(a.strata["e_value"] >= a.strata["e_value_ci"])

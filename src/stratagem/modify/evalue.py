@@ -119,7 +119,7 @@ def evalue(
     --------
     >>> r = evalue(1.8, 1.2, 2.7)
     >>> round(r.estimate, 3), round(r.ci, 3)
-    (3.0, 1.686)
+    (3.0, 1.69)
     """
     if measure not in _MEASURES:
         raise SpecError(

@@ -40,6 +40,8 @@ With fewer than two estimable strata every test is NaN with a note; nothing rais
 
 from __future__ import annotations
 
+import warnings
+
 import numpy as np
 import pandas as pd
 from scipy import stats
@@ -83,7 +85,9 @@ def cochran_q(theta, se):
     k = int(use.sum())
     if k < 2:
         return np.nan, np.nan, np.nan, np.nan, k
-    res = combine_effects(theta[use], se[use] ** 2, method_re="chi2")
+    with warnings.catch_warnings():  # its random-effects extras may take sqrt of a negative; unused
+        warnings.simplefilter("ignore", RuntimeWarning)
+        res = combine_effects(theta[use], se[use] ** 2, method_re="chi2")
     q = float(res.q)
     df = k - 1
     p = float(stats.chi2.sf(q, df))
