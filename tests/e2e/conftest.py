@@ -208,6 +208,8 @@ def _start_lab(page, server) -> None:
     page.wait_for_function("() => window.jupyterapp && window.jupyterapp.shell && "
                            "document.querySelector('.jp-LabShell') !== null", timeout=90_000)
     page.wait_for_function("() => window.jupyterapp.serviceManager.isReady", timeout=60_000)
+    # Give notebooks the window's width (the file browser would take a fifth of it).
+    page.evaluate("() => window.jupyterapp.shell.collapseLeft()")
 
 
 @pytest.fixture(scope="session")

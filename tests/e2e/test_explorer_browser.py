@@ -141,6 +141,14 @@ def test_drag_keyboard_measure_remove_and_saved_snapshot(page, lab_server, artif
     assert log_fit["max_residual"] < 1.5, f"ratio points are not on a log axis: {log_fit}"
     assert abs(plot["null"][0] - log_fit["null_expected_at"]) < 1.5, (
         f"null line at x={plot['null'][0]:.1f}, but 1 falls at x={log_fit['null_expected_at']:.1f}")
+    fits = root.evaluate("""(r) => {
+        const svg = r.querySelector('svg.sg-forest').getBoundingClientRect();
+        const area = r.closest('.jp-OutputArea-output') || r.parentElement;
+        return {plot_right: Math.round(svg.right), output_right: Math.round(area.getBoundingClientRect().right),
+                window: window.innerWidth};
+    }""")
+    print(f"plot within the output area without scrolling: {fits['plot_right'] <= fits['output_right']} "
+          f"({fits})")
     shot = artifacts / "explorer-two-modifiers-rr.png"
     root.screenshot(path=str(shot))
     page.screenshot(path=str(artifacts / "explorer-two-modifiers-rr-page.png"))
