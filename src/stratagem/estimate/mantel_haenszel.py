@@ -12,7 +12,7 @@ unexposed non-cases, ``N1 = a + b``, ``N0 = c + d``, ``T = N1 + N0`` and the wei
 * Odds ratio (Mantel & Haenszel 1959, J Natl Cancer Inst 22:719): ``sum(a d / T) / sum(b c / T)``,
   computed with :class:`statsmodels.stats.contingency_tables.StratifiedTable`; standard error of the
   log odds ratio by Robins, Breslow & Greenland (1986, Biometrics 42:311), as statsmodels does it.
-* Risk ratio (Nurminen 1981; Greenland & Robins 1985, Biometrics 41:55):
+* Risk ratio (as in Greenland & Robins 1985, Biometrics 41:55-68):
   ``sum(a N0 / T) / sum(c N1 / T)``, with the Greenland & Robins (1985) variance of its log,
   ``sum(N1 N0 M1 / T^2 - a c / T) / (sum(a N0 / T) sum(c N1 / T))`` where ``M1 = a + c``.
 * Risk difference (Greenland & Robins 1985): ``sum(W (a/N1 - c/N0)) / sum(W)``, with the Sato (1989,
