@@ -84,13 +84,10 @@ class Unit:
 def _standardise(x: np.ndarray, w: np.ndarray) -> None:
     """Centre and scale the columns of ``x`` in place (weighted), for conditioning only."""
     total = w.sum()
-    for j in range(x.shape[1]):
-        col = x[:, j]
-        m = (w @ col) / total
-        col -= m
-        s = np.sqrt((w @ (col * col)) / total)
-        if s > 0:
-            col /= s
+    m = (w @ x) / total
+    x -= m
+    s = np.sqrt(np.einsum("i,ij,ij->j", w, x, x) / total)
+    x /= np.where(s > 0, s, 1.0)
 
 
 def layout(prep: Prepared) -> Layout:

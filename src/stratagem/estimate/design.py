@@ -104,6 +104,18 @@ def _fill(frame: pd.DataFrame, plan: list, order: np.ndarray | None) -> np.ndarr
     return out
 
 
+def _covariance(x: np.ndarray, w: np.ndarray, total: float) -> np.ndarray:
+    """Weighted covariance matrix of the columns of ``x`` (p x p), without copying ``x`` when the
+    columns are roughly centred already; a centred copy is used where cancellation would lose digits."""
+    mean = (w @ x) / total
+    raw = (x.T @ x if np.all(w == 1.0) else (x.T * w) @ x) / total
+    gram = raw - np.outer(mean, mean)
+    if np.any(np.diag(gram) < 1e-6 * np.diag(raw)):  # a column far from centred: be exact
+        xc = x - mean
+        gram = (xc * w[:, None]).T @ xc / total
+    return gram
+
+
 def independent_columns(x: np.ndarray, w: np.ndarray | None = None, tol: float = RANK_TOL):
     """Which columns of ``x`` (n, p) to keep so that ``[1, x[:, keep]]`` has full column rank.
 
@@ -123,9 +135,7 @@ def independent_columns(x: np.ndarray, w: np.ndarray | None = None, tol: float =
     reason = [""] * p
     if p == 0 or total <= 0:
         return keep, ["constant"] * p
-    mean = (w @ x) / total
-    xc = x - mean
-    gram = (xc * w[:, None]).T @ xc / total  # weighted covariance matrix; p is small
+    gram = _covariance(x, w, total)
     scale = np.sqrt(np.maximum(np.diag(gram), 0.0))
     top = max(float(scale.max()), 1e-300)
     for j in range(p):
