@@ -1,6 +1,6 @@
 // stratagem Explorer: the front end of stratagem.widgets.Explorer (anywidget ES module).
 //
-// The view draws what Python publishes (`_result`, `_status`, `_variables`) and writes only the
+// The view draws what Python publishes (`_result`, `_status`, `_variables`, `_transport`) and writes only the
 // public inputs (`strata`, `bins`, `method`, `measure`, `level`, `interval`, `n_boot`) with
 // model.set + model.save_changes. Nothing is computed here but layout. Every string that comes from
 // the data is inserted with textContent or setAttribute, never as HTML. No network, no imports.
@@ -194,6 +194,27 @@ export function heterogeneityLine(result) {
   const pieces = (head.length ? head : tests).map(testPiece).filter((p) => p);
   if (!pieces.length) return "No test of effect modification for this analysis.";
   return `Effect modification: ${pieces.join(" · ")}`;
+}
+
+// ---------------------------------------------------------------------------------------------
+// The effect transported to a target population (same rules as snapshot.py: target_row)
+
+/**
+ * The row of the transported effect shown after the overall row, or null when no target is picked.
+ * `transport` is the `_transport` trait: {name, state: "ok"|"error", message, rows: [study, target],
+ * notes, code}. The row carries `label` ("target: <name>"), `status` ("ok" or "error"), `message`
+ * and, when ok, the target row's numbers.
+ * @param {any} transport
+ */
+export function targetRow(transport) {
+  if (!transport || !transport.state) return null;
+  const label = `target: ${transport.name ?? "target"}`;
+  if (transport.state !== "ok") {
+    return { population: "target", label, status: "error", message: transport.message || "The effect could not be transported." };
+  }
+  const found = (transport.rows || []).find((r) => r.population === "target");
+  if (!found) return null;
+  return { ...found, label, status: "ok", message: "" };
 }
 
 // ---------------------------------------------------------------------------------------------
@@ -508,18 +529,21 @@ function render({ model, el }) {
     for (const [k, pane] of Object.entries(panes)) pane.hidden = k !== key;
   }
 
-  function drawEffects(result) {
+  function drawEffects() {
+    const result = model.get("_result") || {};
+    const transport = model.get("_transport") || {};
     effects.replaceChildren();
     const rows = result.rows || [];
     if (rows.length === 0) {
       effects.append(h("p", { class: "sg-empty" }, "No result yet."));
       return;
     }
+    const target = targetRow(transport);
     const wrap = h("div", { class: "sg-effects-grid" });
     const table = h("table");
     const thead = h("thead");
     const hr = h("tr");
-    const plot = drawPlot(result);
+    const plot = drawPlot(result, target);
     const modifiers = result.modifiers || [];
     table.classList.toggle("sg-all-ok", rows.every((r) => r.status === "ok"));
     for (const [field, fieldLabel] of TABLE_FIELDS) {
@@ -554,16 +578,24 @@ function render({ model, el }) {
         }
         tr.append(td);
         if (field === PLOT_AFTER && i === 0) {
-          const cell = h("td", { class: "sg-plot-cell", rowspan: String(rows.length) });
+          const cell = h("td", { class: "sg-plot-cell", rowspan: String(rows.length + (target ? 1 : 0)) });
           cell.append(plot.svg);
           tr.append(cell);
         }
       }
       tbody.append(tr);
     });
+    if (target) tbody.append(targetTr(target));
     table.append(thead, tbody);
     wrap.append(table);
-    effects.append(wrap, h("p", { class: "sg-het" }, heterogeneityLine(result)));
+    effects.append(wrap);
+    if (target) {
+      const items = target.status === "ok" ? transport.notes || [] : [];
+      const list = h("ul", { class: "sg-transport-notes" });
+      for (const n of items) list.append(h("li", {}, String(n)));
+      if (items.length) effects.append(list);
+    }
+    effects.append(h("p", { class: "sg-het" }, heterogeneityLine(result)));
     const tests = result.heterogeneity || [];
     if (tests.length) {
       const details = h("details", { class: "sg-het-all" });
@@ -581,16 +613,49 @@ function render({ model, el }) {
     effects.append(h("p", { class: "sg-scale" }, `${result.scale_note}; ${Math.round(result.level * 1000) / 10}% ${result.interval} intervals.`));
   }
 
-  function drawPlot(result) {
+  /** The table row of the transported effect: its numbers, or the reason it has none. */
+  function targetTr(target) {
+    const tr = h("tr", { class: "sg-target", "data-population": "target" });
+    if (target.status !== "ok") tr.classList.add("sg-target-error");
+    let skip = 0;
+    for (const [field] of TABLE_FIELDS) {
+      if (skip > 0) {
+        skip -= 1;
+        continue;
+      }
+      if (field === "stratum") {
+        tr.append(h("td", { "data-field": "stratum", title: target.label }, target.label));
+      } else if (field === "status") {
+        tr.append(h("td", { "data-field": "status" }, target.status === "ok" ? "transported" : "not transported"));
+      } else if (target.status !== "ok" && field === "estimate") {
+        // The reason takes the place of the numbers (estimate to p); the rest of the view stays.
+        const span = ["estimate", "ci_low", "ci_high", "p_value"].length;
+        tr.append(h("td", { class: "sg-transport-message", colspan: String(span), role: "note" }, target.message));
+        skip = span - 1;
+      } else if (COUNT_FIELDS.has(field) || target.status !== "ok") {
+        tr.append(h("td", { "data-field": field, class: "sg-num" }, ""));
+      } else {
+        const v = target[field];
+        const td = h("td", { "data-field": field, class: "sg-num" },
+          field === "p_value" ? fmtP(v).replace("p = ", "").replace("p < ", "<") : fmt(v));
+        td.setAttribute("data-value", v === null || v === undefined ? "" : String(v));
+        tr.append(td);
+      }
+    }
+    return tr;
+  }
+
+  function drawPlot(result, target = null) {
     const rows = result.rows || [];
-    const height = HEAD_H + ROW_H * rows.length;
+    const shown = rows.length + (target ? 1 : 0);
+    const height = HEAD_H + ROW_H * shown;
     const svg = s("svg", { class: "sg-forest", width: PLOT_W, height, viewBox: `0 0 ${PLOT_W} ${height}`, role: "img" });
     svg.setAttribute("aria-label", `${result.measure_name} by stratum with intervals`);
     const axisSvg = s("svg", { class: "sg-axis", width: PLOT_W, height: AXIS_H, viewBox: `0 0 ${PLOT_W} ${AXIS_H}`, "aria-hidden": "true" });
     const left = PAD;
     const right = PLOT_W - PAD;
-    const ax = axis(rows, !!result.ratio, result.null, left, right);
-    const bottom = HEAD_H + ROW_H * rows.length;
+    const ax = axis(target ? [...rows, target] : rows, !!result.ratio, result.null, left, right);
+    const bottom = HEAD_H + ROW_H * shown;
     axisSvg.append(s("text", { class: "sg-axis-title", x: PLOT_W / 2, y: 12, "text-anchor": "middle" },
       `${result.measure_name}${result.ratio ? " (log scale)" : ""}`));
     for (const tick of ax.ticks) {
@@ -628,7 +693,28 @@ function render({ model, el }) {
       }
       svg.append(g);
     });
+    if (target) svg.append(drawTarget(target, ax, !!result.ratio, HEAD_H + ROW_H * rows.length + ROW_H / 2, left));
     return { svg, axisSvg };
+  }
+
+  /** The transported effect on the same axis: an interval and a triangle in its own colour. */
+  function drawTarget(target, ax, ratio, cy, left) {
+    const g = s("g", { class: "sg-target", "data-population": "target" });
+    const est = target.estimate;
+    if (target.status === "ok" && Number.isFinite(est) && (est > 0 || !ratio)) {
+      const lo = target.ci_low;
+      const hi = target.ci_high;
+      if (Number.isFinite(lo) && Number.isFinite(hi) && (lo > 0 || !ratio)) {
+        g.append(s("line", { class: "sg-ci", x1: ax.x(lo), x2: ax.x(hi), y1: cy, y2: cy }));
+      }
+      const x = ax.x(est);
+      const point = s("path", { class: "sg-point", d: `M${x} ${cy - 6}L${x + 6} ${cy + 5}L${x - 6} ${cy + 5}Z`, "data-x": x });
+      point.append(s("title", {}, `${target.label}: ${fmt(est)} (${fmt(lo)} to ${fmt(hi)})`));
+      g.append(point);
+    } else {
+      g.append(s("text", { class: "sg-reason", x: left, y: cy + 4 }, "not transported"));
+    }
+    return g;
   }
 
   function drawTypes(result) {
@@ -736,16 +822,26 @@ function render({ model, el }) {
   function drawResult() {
     const result = model.get("_result") || {};
     title.textContent = result.title ? `${result.title} — ${result.measure_name}, ${result.method}` : "stratagem Explorer";
-    drawEffects(result);
+    drawEffects();
     drawTypes(result);
     drawChecks(result);
-    pre.textContent = result.recipe || "";
+    drawCode();
     copied.textContent = "";
     notes.replaceChildren();
     for (const n of result.notes || []) notes.append(h("li", {}, n));
     caution.textContent = result.caution || "";
     drawControls();
   }
+
+  function drawCode() {
+    const result = model.get("_result") || {};
+    const transport = model.get("_transport") || {};
+    pre.textContent = (result.recipe || "") + (transport.state && transport.code ? `\n${transport.code}` : "");
+  }
+  const onTransport = () => {
+    drawEffects();
+    drawCode();
+  };
 
   function drawStatus() {
     const st = model.get("_status") || { state: "idle" };
@@ -767,6 +863,7 @@ function render({ model, el }) {
   listen("change:_variables", onStrata);
   listen("change:_result", drawResult);
   listen("change:_status", drawStatus);
+  listen("change:_transport", onTransport);
   const onControl = () => drawControls();
   for (const name of ["method", "measure", "level", "interval", "n_boot"]) listen(`change:${name}`, onControl);
 

@@ -325,3 +325,145 @@ def test_snapshot_marks_rows_that_are_not_estimable(demo):
     payload["rows"][0] = {**payload["rows"][0], "estimate": None, "status": "no exposed rows"}
     html = snapshot_html(payload)
     assert 'class="sg-reason"' in html and "no exposed rows" in html
+
+
+# -- the effect transported to a target population ----------------------------------------------
+
+def target_frame(demo):
+    """A target population: mostly people living alone, on insulin (modifiers shifted)."""
+    rng = np.random.default_rng(3)
+    weight = np.where(demo["lives_alone"] == "yes", 4.0, 1.0) * np.where(demo["insulin"] == "yes", 2.0, 1.0)
+    rows = rng.choice(len(demo), size=1500, p=weight / weight.sum())
+    return demo.iloc[rows][["sex", "lives_alone", "insulin", "age"]].reset_index(drop=True)
+
+
+def expected_transport(df, explorer, target, **kw):
+    from stratagem.transport import transport
+    from stratagem.widgets.payload import records
+
+    result = transport(sg.analyze(df, **explorer.spec.to_dict()), target, **kw)
+    return records(result.to_frame()), result
+
+
+@pytest.mark.parametrize(
+    "changes",
+    [
+        {"strata": ["lives_alone"]},
+        {"strata": ["lives_alone", "insulin"], "measure": "rr"},
+        {"strata": ["insulin"], "measure": "or", "level": 0.9},
+        {"strata": ["age"], "bins": {"age": 3}},
+        {"strata": ["lives_alone"], "interval": "bootstrap", "n_boot": 50},
+    ],
+)
+def test_transport_rows_equal_transport_of_analyze(demo, changes):
+    target = target_frame(demo)
+    ex = make(demo, confounders=("deprivation", "clinic_visits"), method="aipw", target=target,
+              target_name="clinic B")
+    assert ex._transport["state"] == "error"  # no modifier yet: says what to do
+    assert "Add a modifier" in ex._transport["message"] and ex.transported is None
+    for name, value in changes.items():
+        setattr(ex, name, value)
+    ex.wait(60)
+    assert ex._status["state"] == "idle", ex._status
+    rows, result = expected_transport(demo, ex, target)
+    assert ex._transport["state"] == "ok" and ex._transport["message"] == ""
+    assert ex._transport["rows"] == rows  # exactly, to the last digit
+    assert [r["population"] for r in rows] == ["study", "target"]
+    assert rows[0]["estimate"] == ex._result["rows"][-1]["estimate"]  # the study row is the overall row
+    assert rows[1]["estimate"] != rows[0]["estimate"]
+    assert ex._transport["notes"] == list(result.notes)
+    assert ex._transport["name"] == "clinic B" and ex._transport["n_target"] == 1500
+    assert ex.transported.to_frame().equals(result.to_frame())
+    assert ex._result == reference(demo, ex)  # the study's own result is unchanged by a target
+
+
+def test_set_target_without_reanalysis_and_removal(demo, monkeypatch):
+    ex = make(demo, strata=("lives_alone", "insulin"), measure="rr")
+    assert ex._transport == {} and ex.target is None and ex.transported is None
+    calls = []
+    real = explorer_module.analyze
+    monkeypatch.setattr(explorer_module, "analyze", lambda *a, **k: calls.append(1) or real(*a, **k))
+    target = target_frame(demo)
+    ex.set_target(target, name="district 2", sampled=False)
+    assert calls == [], "picking a target reuses the Analysis on screen"
+    rows, _ = expected_transport(demo, ex, target, sampled=False)
+    assert ex._transport["rows"] == rows and ex._transport["n_target"] is None
+    assert "sampled=False" in ex._transport["code"]
+    labels = list(ex.analysis.strata["stratum"])
+    shares = {labels[0]: 0.5, labels[-1]: 0.5}
+    ex.set_target(shares, name="half and half")
+    rows, _ = expected_transport(demo, ex, shares)
+    assert ex._transport["rows"] == rows and ex._transport["name"] == "half and half"
+    ex.set_target(None)
+    assert ex._transport == {} and ex.transported is None
+    assert "sg-target" not in ex._repr_mimebundle_()[0]["text/html"]
+
+
+def test_transport_error_shows_in_its_place_only(demo):
+    ex = make(demo, strata=("lives_alone",))
+    good = ex._result
+    ex.set_target(target_frame(demo).drop(columns="lives_alone"), name="no column")
+    assert ex._transport["state"] == "error"
+    assert "'lives_alone'" in ex._transport["message"] and "lacks modifier column" in ex._transport["message"]
+    assert ex._status["state"] == "idle" and ex._result == good
+    # a target stratum the study lacks: transport's ModifierError, named
+    odd = target_frame(demo).assign(lives_alone="sometimes")
+    ex.set_target(odd, name="odd")
+    assert ex._transport["state"] == "error" and "'lives_alone=sometimes'" in ex._transport["message"]
+    html = ex._repr_mimebundle_()[0]["text/html"]
+    assert 'class="sg-transport-message"' in html and "lives_alone=sometimes" in html
+    assert 'data-stratum="overall"' in html  # the rest of the snapshot stays
+    # the next analysis with a fitting target recovers
+    ex.set_target(target_frame(demo), name="fits")
+    assert ex._transport["state"] == "ok"
+
+
+def test_target_argument_checks(demo):
+    with pytest.raises(sg.errors.DataError, match="target must be a pandas DataFrame"):
+        make(demo, target=[1, 2, 3])
+    ex = make(demo)
+    with pytest.raises(SpecError, match="name must be a non-empty string"):
+        ex.set_target(target_frame(demo), name="")
+    with pytest.raises(SpecError, match="'sampled'"):
+        ex.set_target(target_frame(demo), sampled="yes")
+
+
+def test_target_picked_while_computing_is_used(demo, monkeypatch):
+    """set_target() during a running job: the delivered result uses the newest target."""
+    gate = threading.Event()
+    real = explorer_module.analyze
+
+    def slow(*a, **k):
+        gate.wait(10)
+        return real(*a, **k)
+
+    ex = make(demo, strata=("insulin",))
+    monkeypatch.setattr(explorer_module, "analyze", slow)
+    ex.strata = ["lives_alone"]  # runs on the worker, blocked at the gate
+    first, second = target_frame(demo), target_frame(demo).iloc[:300]
+    ex.set_target(first, name="first")  # applied to the Analysis on screen (insulin) at once ...
+    ex.set_target(second, name="second")
+    gate.set()
+    ex.wait(30)
+    assert ex._result["modifiers"] == ["lives_alone"]
+    rows, _ = expected_transport(demo, ex, second)
+    assert ex._transport["name"] == "second" and ex._transport["rows"] == rows
+
+
+def test_snapshot_shows_the_transported_effect(demo):
+    ex = make(demo, strata=("lives_alone",), target=target_frame(demo), target_name=HOSTILE)
+    html = ex._repr_mimebundle_()[0]["text/html"]
+    assert '<tr class="sg-target" data-population="target">' in html
+    assert '<g class="sg-target" data-population="target">' in html
+    assert "<img" not in html and f"target: {HOSTILE}".replace("<", "&lt;").replace(">", "&gt;") in html
+    from stratagem.widgets.snapshot import fmt
+
+    estimate = ex._transport["rows"][1]["estimate"]
+    assert fmt(estimate) in html
+    assert "sg-transport-notes" in html and "same in the target" in html
+    # the overall row and the target row are drawn on one axis: the target point sits at its value
+    from stratagem.widgets.snapshot import LABEL_W, PAD, PLOT_W, target_row
+
+    rows = ex._result["rows"]
+    x = axis(rows + [target_row(ex._transport)], False, 0.0, LABEL_W + PAD, LABEL_W + PLOT_W - PAD)["x"]
+    assert f'M{x(estimate):.2f} ' in html

@@ -360,3 +360,134 @@ test("heterogeneity line: headline tests only, I² as a percentage", async () =>
   assert.equal(heterogeneityLine({ modifiers: [], heterogeneity: tests }), "Add a modifier to test for effect modification.");
   assert.equal(heterogeneityLine({ modifiers: ["sex"], heterogeneity: [] }), "No test of effect modification for this analysis.");
 });
+
+// -- the effect transported to a target population ---------------------------------------------
+
+function moved(extra = {}) {
+  return {
+    name: "clinic B",
+    state: "ok",
+    message: "",
+    rows: [
+      { population: "study", estimate: 0.25, se: 0.09, ci_low: 0.07, ci_high: 0.43, p_value: 0.006, mean_exposed: 0.5, mean_unexposed: 0.25 },
+      { population: "target", estimate: 0.3812345678901234, se: 0.1, ci_low: 0.18523, ci_high: 0.5772, p_value: 0.0001, mean_exposed: 0.61, mean_unexposed: 0.2287654321 },
+    ],
+    notes: ["Transport assumes the effect within each stratum is the same in the target as in the study."],
+    n_target: 500,
+    code: "transported = sg.transport(analysis, target)\n",
+    ...extra,
+  };
+}
+
+test("targetRow: none, ok and error", async () => {
+  const { targetRow } = await import("../explorer.js");
+  assert.equal(targetRow({}), null);
+  assert.equal(targetRow(undefined), null);
+  const ok = targetRow(moved());
+  assert.equal(ok.label, "target: clinic B");
+  assert.equal(ok.status, "ok");
+  assert.equal(ok.estimate, 0.3812345678901234);
+  const bad = targetRow(moved({ state: "error", message: "no such stratum", rows: [] }));
+  assert.deepEqual([bad.status, bad.message, bad.label], ["error", "no such stratum", "target: clinic B"]);
+});
+
+test("target row: after the overall row, full-precision values, same axis, own marker, notes", () => {
+  const rows = [row("a", { estimate: 0.2, ci_low: 0.1, ci_high: 0.3 }), row("overall", { estimate: 0.1, ci_low: 0.05, ci_high: 0.15 })];
+  const { root } = mount({ _result: result(rows, { modifiers: ["g"] }), _transport: moved() });
+  const trs = [...root.querySelectorAll(".sg-effects table tbody tr")];
+  assert.equal(trs.length, 3);
+  assert.equal(trs[1].getAttribute("data-stratum"), "overall");
+  const tr = trs[2];
+  assert.ok(tr.classList.contains("sg-target"));
+  assert.equal(tr.getAttribute("data-population"), "target");
+  assert.equal(tr.hasAttribute("data-stratum"), false, "the target row is not a stratum");
+  assert.equal(tr.querySelector('td[data-field="stratum"]').textContent, "target: clinic B");
+  const est = tr.querySelector('td[data-field="estimate"]');
+  assert.equal(Number(est.getAttribute("data-value")), 0.3812345678901234);
+  assert.equal(est.textContent, "0.381");
+  assert.equal(Number(tr.querySelector('td[data-field="mean_unexposed"]').getAttribute("data-value")), 0.2287654321);
+  assert.equal(tr.querySelector('td[data-field="status"]').textContent, "transported");
+  // the plot spans the extra row, draws it on the same axis (the domain now reaches 0.5772)
+  const cell = root.querySelector("td.sg-plot-cell");
+  assert.equal(cell.getAttribute("rowspan"), "3");
+  const svg = root.querySelector("svg.sg-forest");
+  assert.equal(Number(svg.getAttribute("height")), HEAD_H + 3 * ROW_H);
+  assert.equal(svg.querySelectorAll("g.sg-row[data-stratum]").length, 2, "strata and overall rows only");
+  const w = Number(svg.getAttribute("width"));
+  const target = { estimate: 0.3812345678901234, ci_low: 0.18523, ci_high: 0.5772, status: "ok" };
+  const ax = axis([...rows, target], false, 0, 10, w - 10);
+  assert.ok(Math.abs(ax.domain[1] - (0.5772 + 0.05 * 0.5772)) < 1e-12);
+  const g = svg.querySelector('g.sg-target[data-population="target"]');
+  const point = g.querySelector("path.sg-point");
+  assert.ok(Math.abs(Number(point.getAttribute("data-x")) - ax.x(0.3812345678901234)) < 1e-9);
+  assert.match(point.getAttribute("d"), /^M[\d.]+ [\d.]+L/);
+  assert.notEqual(point.tagName.toLowerCase(), "circle", "a marker distinct from the strata's");
+  const ci = g.querySelector("line.sg-ci");
+  assert.ok(Math.abs(Number(ci.getAttribute("x1")) - ax.x(0.18523)) < 1e-9);
+  assert.ok(Math.abs(Number(ci.getAttribute("x2")) - ax.x(0.5772)) < 1e-9);
+  assert.equal(Number(ci.getAttribute("y1")), HEAD_H + 2 * ROW_H + ROW_H / 2);
+  // the overall point moved with the wider axis: it still sits at its own estimate
+  const overall = svg.querySelector('g.sg-row[data-stratum="overall"] .sg-point');
+  assert.ok(Math.abs(Number(overall.getAttribute("data-x")) - ax.x(0.1)) < 1e-9);
+  assert.match(root.querySelector(".sg-transport-notes").textContent, /same in the target/);
+  assert.match(root.querySelector("pre.sg-code").textContent, /sg\.transport\(analysis, target\)/);
+});
+
+test("target error: the message takes the target row's place, the rest of the view stays", () => {
+  const rows = [row("a"), row("overall")];
+  const message = "Target stratum/strata 'g=c' (3 rows) do not occur in the study";
+  const { root } = mount({ _result: result(rows, { modifiers: ["g"] }), _transport: moved({ state: "error", message, rows: [], notes: [] }) });
+  const tr = root.querySelector("tr.sg-target");
+  assert.ok(tr.classList.contains("sg-target-error"));
+  assert.equal(tr.querySelector("td.sg-transport-message").textContent, message);
+  assert.equal(tr.querySelector('td[data-field="status"]').textContent, "not transported");
+  assert.equal(tr.querySelector('td[data-field="estimate"]'), null);
+  const g = root.querySelector("svg.sg-forest g.sg-target");
+  assert.equal(g.querySelector(".sg-point"), null);
+  assert.equal(g.querySelector("text.sg-reason").textContent, "not transported");
+  // the effects of the study are all still there, and nothing is marked as a whole-widget error
+  assert.equal(root.querySelectorAll("svg.sg-forest g.sg-row .sg-point").length, 2);
+  assert.equal(root.querySelectorAll('.sg-effects tbody tr[data-stratum]').length, 2);
+  assert.ok(!root.classList.contains("sg-stale"));
+  assert.equal(root.querySelector(".sg-message").textContent, "");
+  assert.equal(root.querySelector(".sg-transport-notes"), null);
+});
+
+test("target: Python picking, changing and removing it redraws the Effects view", () => {
+  const { model, root } = mount({ _result: result([row("a"), row("overall")], { modifiers: ["g"] }) });
+  assert.equal(root.querySelector("tr.sg-target"), null);
+  assert.equal(root.querySelector("svg.sg-forest g.sg-target"), null);
+  model.put("_transport", moved());
+  assert.ok(root.querySelector('tr.sg-target td[data-field="estimate"]'));
+  assert.equal(root.querySelector("td.sg-plot-cell").getAttribute("rowspan"), "3");
+  model.put("_transport", moved({ name: "clinic C" }));
+  assert.equal(root.querySelectorAll("tr.sg-target").length, 1);
+  assert.equal(root.querySelector('tr.sg-target td[data-field="stratum"]').textContent, "target: clinic C");
+  model.put("_transport", {});
+  assert.equal(root.querySelector("tr.sg-target"), null);
+  assert.equal(root.querySelector("td.sg-plot-cell").getAttribute("rowspan"), "2");
+  assert.doesNotMatch(root.querySelector("pre.sg-code").textContent, /transport/);
+});
+
+test("target: a ratio with an interval reaching 0 draws no line, only the point", () => {
+  const rows = [row("a", { estimate: 2, ci_low: 1, ci_high: 4 }), row("overall", { estimate: 1.5, ci_low: 1.1, ci_high: 2 })];
+  const rr = moved({ rows: [{ population: "study" }, { population: "target", estimate: 1.8, ci_low: 0, ci_high: 3 }] });
+  const { root } = mount({ _result: result(rows, { modifiers: ["g"], measure: "rr", ratio: true, null: 1 }), _transport: rr });
+  const g = root.querySelector("svg.sg-forest g.sg-target");
+  assert.equal(g.querySelector("line.sg-ci"), null);
+  assert.ok(g.querySelector("path.sg-point"));
+});
+
+test("escaping: a hostile target name, message and note appear as text", () => {
+  const { root, model } = mount({
+    _result: result([row("a"), row("overall")], { modifiers: ["g"] }),
+    _transport: moved({ name: HOSTILE, notes: [`note ${HOSTILE}`] }),
+  });
+  assert.equal(root.querySelectorAll("img").length, 0);
+  assert.equal(root.querySelector('tr.sg-target td[data-field="stratum"]').textContent, `target: ${HOSTILE}`);
+  assert.equal(root.querySelector(".sg-transport-notes li").textContent, `note ${HOSTILE}`);
+  assert.match(root.querySelector("svg.sg-forest g.sg-target title").textContent, /<img src=x/);
+  model.put("_transport", moved({ state: "error", message: HOSTILE, name: "<b>x</b>" }));
+  assert.equal(root.querySelectorAll("img").length + root.querySelectorAll("b").length, 0);
+  assert.equal(root.querySelector("td.sg-transport-message").textContent, HOSTILE);
+});

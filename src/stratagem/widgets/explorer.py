@@ -4,14 +4,18 @@ Traits, in three kinds (see DESIGN.md and the widget contract):
 
 * public inputs the front end writes: ``strata``, ``bins``, ``method``, ``measure``, ``level``,
   ``interval``, ``n_boot``;
-* derived state Python writes (leading underscore): ``_variables``, ``_result``, ``_status``;
-* Python-only: :attr:`Explorer.analysis` and :attr:`Explorer.spec`.
+* derived state Python writes (leading underscore): ``_variables``, ``_result``, ``_status``,
+  ``_transport`` (the effect in a target population, when one is picked);
+* Python-only: :attr:`Explorer.analysis`, :attr:`Explorer.spec`, :attr:`Explorer.target` and
+  :attr:`Explorer.transported`.
 
 Every change of an input builds a new Spec and calls :func:`stratagem.analyze` on a worker thread;
 the newest request supersedes running ones (their results are dropped); the result is published as
 JSON (:func:`~.payload.analysis_payload`) together with a static HTML snapshot that replaces the
-``text/html`` of every displayed copy of the widget (through its display id). Nothing shown is
-computed anywhere but in ``analyze``.
+``text/html`` of every displayed copy of the widget (through its display id). When a target
+population is picked (``target=`` or :meth:`Explorer.set_target`), each new Analysis is also passed
+to :func:`stratagem.transport`, and the effect in the target is shown beside the overall effect.
+Nothing shown is computed anywhere but in ``analyze`` and ``transport``.
 """
 
 from __future__ import annotations
@@ -19,7 +23,7 @@ from __future__ import annotations
 import pathlib
 import threading
 import time
-from collections.abc import Sequence
+from collections.abc import Mapping, Sequence
 from typing import Any
 
 import anywidget
@@ -31,7 +35,7 @@ from ..errors import ColumnNotFoundError, DataError, SpecError, StratagemError
 from ..frame import modifier_summary
 from ..results import Analysis
 from ..spec import Spec
-from .payload import analysis_payload
+from .payload import Target, analysis_payload, run_transport
 from .snapshot import placeholder_html, snapshot_html
 from .worker import Outcome, Runner, kernel_post
 
@@ -40,6 +44,22 @@ __all__ = ["Explorer", "front_end_file"]
 
 def _raise(exc, _check):
     raise exc
+
+
+def _check_target(data, name: str = "target", weights=None, sampled: bool = True) -> Target | None:
+    """Check the arguments naming a target population; None when there is none."""
+    if data is None:
+        return None
+    if not isinstance(data, (pd.DataFrame, Mapping)):
+        raise DataError(
+            f"The target must be a pandas DataFrame of the target population or a mapping of "
+            f"stratum to share; got {type(data).__name__}. Pass one of those, or None to remove it."
+        )
+    if not isinstance(name, str) or not name.strip():
+        raise SpecError(f"The target's name must be a non-empty string, e.g. 'clinic B'; got {name!r}.")
+    if not isinstance(sampled, bool):
+        raise SpecError(f"The 'sampled' parameter must be True or False; got {sampled!r}.")
+    return Target(data, name, weights, sampled)
 
 _PACKAGE = pathlib.Path(__file__).resolve().parent.parent
 
@@ -103,6 +123,11 @@ class Explorer(anywidget.AnyWidget):
         counts and potential-outcome columns.
     data_name : str
         The name the Code view uses for the table (default ``"df"``).
+    target : pandas.DataFrame or mapping, optional
+        A target population (see :meth:`set_target`): the Effects view then shows the overall effect
+        transported to it, beside the study's overall effect.
+    target_name : str
+        What the view calls the target (default ``"target"``).
     sync : bool
         Compute on the calling thread instead of a worker thread (for scripts and tests).
     **fixed
@@ -115,6 +140,10 @@ class Explorer(anywidget.AnyWidget):
         The Analysis on screen (the newest successful one).
     spec : Spec
         Its Spec (resolved: method and measure filled in).
+    target : Target or None
+        The picked target population (Python-only, never synced).
+    transported : TransportResult or None
+        ``transport(analysis, target)`` of the Analysis on screen, when it succeeded.
     """
 
     _esm = front_end_file("explorer.js")
@@ -131,6 +160,7 @@ class Explorer(anywidget.AnyWidget):
     _variables = traitlets.List(default_value=[]).tag(sync=True)
     _result = traitlets.Dict(default_value={}).tag(sync=True)
     _status = traitlets.Dict(default_value={"state": "idle", "message": "", "progress": 0.0}).tag(sync=True)
+    _transport = traitlets.Dict(default_value={}).tag(sync=True)
 
     _INPUTS = ("strata", "bins", "method", "measure", "level", "interval", "n_boot")
 
@@ -150,6 +180,8 @@ class Explorer(anywidget.AnyWidget):
         bins: dict | None = None,
         variables: Sequence[str] | None = None,
         data_name: str = "df",
+        target: pd.DataFrame | Mapping | None = None,
+        target_name: str = "target",
         sync: bool = False,
         **fixed: Any,
     ):
@@ -162,7 +194,8 @@ class Explorer(anywidget.AnyWidget):
         if unknown:
             raise SpecError(
                 f"Unknown Explorer argument(s) {unknown}. Valid: exposure, outcome, strata, method, "
-                f"measure, level, interval, n_boot, bins, variables, data_name, sync, {', '.join(_FIXED)}."
+                f"measure, level, interval, n_boot, bins, variables, data_name, target, target_name, "
+                f"sync, {', '.join(_FIXED)}."
             )
         if not data_name.isidentifier():
             raise SpecError(f"data_name must be a Python identifier, e.g. 'df'; got {data_name!r}.")
@@ -185,6 +218,8 @@ class Explorer(anywidget.AnyWidget):
         self._requested: Spec | None = None
         self._display_id = None
         self._last_progress = (0.0, 0.0)
+        self._target = _check_target(target, target_name)
+        self._transported = None
         super().__init__(
             strata=list(strata), bins=dict(bins or {}), method=method, measure=measure,
             level=float(level), interval=interval, n_boot=int(n_boot),
@@ -210,6 +245,50 @@ class Explorer(anywidget.AnyWidget):
         return self._requested if self._requested is not None else self._base
 
     @property
+    def target(self) -> Target | None:
+        """The picked target population (data, name, weights, sampled), or None."""
+        return self._target
+
+    @property
+    def transported(self):
+        """The TransportResult shown (``transport(explorer.analysis, target)``), or None."""
+        return self._transported
+
+    def set_target(
+        self,
+        target: pd.DataFrame | Mapping | None,
+        *,
+        name: str = "target",
+        weights=None,
+        sampled: bool = True,
+    ) -> None:
+        """Pick the population to transport the effect to; None removes it.
+
+        The Effects view then shows ``stratagem.transport(explorer.analysis, target, weights=...,
+        sampled=...)`` beside the study's overall effect, recomputed for every new Analysis. When
+        transport refuses (a target stratum the study could not estimate, a missing modifier column,
+        no modifier yet), its message shows in that place and the rest of the view stays.
+
+        Parameters
+        ----------
+        target : pandas.DataFrame, mapping or None
+            A table of the target population holding the modifier columns, or a mapping of stratum
+            to share (see :func:`stratagem.transport`). Only read, never changed.
+        name : str
+            What the view calls the target, e.g. ``"clinic B"``.
+        weights : str or array-like, optional
+            Frequencies of the target table's rows (a column name or one number per row).
+        sampled : bool
+            Whether the target table is a sample (its shares then carry sampling variance).
+        """
+        record = _check_target(target, name, weights, sampled)
+        with self._lock:
+            self._target = record
+            if self._analysis is not None:
+                self._publish_transport(run_transport(self._analysis, record))
+            self._refresh_display()
+
+    @property
     def data(self) -> pd.DataFrame:
         """The table the Explorer reads (never changed by it)."""
         return self._data
@@ -229,7 +308,9 @@ class Explorer(anywidget.AnyWidget):
 
     def close(self) -> None:
         """Stop the worker thread and close the widget."""
-        self._runner.close()
+        runner = getattr(self, "_runner", None)  # absent when the constructor refused its arguments
+        if runner is not None:
+            runner.close()
         super().close()
 
     # -- inputs -> Spec --------------------------------------------------------------------------
@@ -299,7 +380,9 @@ class Explorer(anywidget.AnyWidget):
         analysis = analyze(self._data, spec, progress=progress)
         check()
         payload = analysis_payload(analysis, self._data_name)
-        return analysis, payload, snapshot_html(payload)
+        target = self._target
+        moved = run_transport(analysis, target)
+        return analysis, payload, moved, target, snapshot_html(payload, moved[1])
 
     def _post(self, fn) -> None:
         post = kernel_post()
@@ -323,13 +406,22 @@ class Explorer(anywidget.AnyWidget):
                 self._set_status("error", _friendly(outcome.error), 0.0)
                 self._refresh_display()
                 return
-            analysis, payload, html = outcome.value
+            analysis, payload, moved, target, html = outcome.value
+            if target is not self._target:  # set_target() was called while this was computed
+                moved = run_transport(analysis, self._target)
+                html = snapshot_html(payload, moved[1])
             self._analysis = analysis
             self._snapshot = html
             with self.hold_sync():
                 self._result = payload
+                self._transported, self._transport = moved
                 self._status = {"state": "idle", "message": "", "progress": 1.0}
             self._refresh_display()
+
+    def _publish_transport(self, moved: tuple) -> None:
+        """Show a new target's transported effect for the Analysis on screen (no re-analysis)."""
+        self._snapshot = snapshot_html(self._result, moved[1])
+        self._transported, self._transport = moved
 
     def _set_status(self, state: str, message: str, progress: float) -> None:
         self._status = {"state": state, "message": message, "progress": float(progress)}

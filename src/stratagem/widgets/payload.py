@@ -8,15 +8,18 @@ so a float arrives in the browser with its full precision (a double survives JSO
 from __future__ import annotations
 
 import math
+from dataclasses import dataclass
 from typing import Any
 
 import numpy as np
 import pandas as pd
 
+from ..errors import StratagemError
 from ..measures import RATIO, null_value
 from ..results import CAUTION, MEASURE_NAMES, STRATA_COLUMNS, Analysis
+from ..transport import transport
 
-__all__ = ["analysis_payload", "plain", "records", "ROW_FIELDS"]
+__all__ = ["analysis_payload", "plain", "records", "ROW_FIELDS", "Target", "run_transport", "transport_payload"]
 
 # Fields of one effects row sent to the front end (the table's columns, in DESIGN.md's names).
 ROW_FIELDS = STRATA_COLUMNS
@@ -109,3 +112,64 @@ def analysis_payload(analysis: Analysis, data_name: str = "df") -> dict:
         "n_input": int(analysis.n_input),
         "n_dropped": int(analysis.n_dropped),
     }
+
+
+@dataclass(frozen=True, eq=False)
+class Target:
+    """A target population picked for the Explorer: the arguments of :func:`stratagem.transport`.
+
+    ``data`` is a DataFrame of the target population or a mapping of stratum shares; ``name`` is
+    what the view calls it; ``weights`` and ``sampled`` are passed to ``transport`` unchanged.
+    """
+
+    data: Any
+    name: str = "target"
+    weights: Any = None
+    sampled: bool = True
+
+
+TRANSPORT_CODE = (
+    "# `target` is the target population given to the Explorer ({name}).\n"
+    "transported = sg.transport(analysis, target{args})\n"
+    "transported.to_frame()  # the study's overall effect and the effect in the target\n"
+)
+
+
+def transport_payload(analysis: Analysis, target: Target | None) -> dict:
+    """The transported effect shown beside the overall effect, as one JSON-ready dict.
+
+    Empty when no target is picked. Otherwise ``name``, ``state`` (``"ok"`` or ``"error"``),
+    ``message`` (why there is no transported effect), ``rows`` (records of
+    :meth:`TransportResult.to_frame`: ``study`` then ``target``, columns ``TRANSPORT_COLUMNS``),
+    ``notes``, ``n_target`` and ``code`` (the call that reproduces it). Nothing is computed here but
+    :func:`stratagem.transport` of the Analysis on screen; its errors become ``message``.
+    """
+    return run_transport(analysis, target)[1]
+
+
+def run_transport(analysis: Analysis, target: Target | None) -> tuple[Any, dict]:
+    """``(TransportResult or None, transport_payload)`` for ``analysis`` and ``target``."""
+    if target is None:
+        return None, {}
+    args = ""
+    if isinstance(target.weights, str):
+        args += f", weights={target.weights!r}"
+    elif target.weights is not None:
+        args += ", weights=weights"
+    if not target.sampled:
+        args += ", sampled=False"
+    out = {"name": target.name, "state": "ok", "message": "", "rows": [], "notes": [],
+           "n_target": None, "code": TRANSPORT_CODE.format(name=target.name, args=args)}
+    if not analysis.spec.strata:
+        return None, {**out, "state": "error", "message": (
+            f"Add a modifier to Stratify by to see the effect in {target.name}: it is the study's "
+            "stratum effects weighted by the target's stratum shares.")}
+    try:
+        result = transport(analysis, target.data, weights=target.weights, sampled=target.sampled)
+    except StratagemError as exc:
+        return None, {**out, "state": "error", "message": str(exc)}
+    except Exception as exc:  # a failure of transport itself: say so here, keep the rest of the view
+        return None, {**out, "state": "error", "message": (
+            f"Transport failed ({type(exc).__name__}: {exc}). Report this as a bug.")}
+    return result, {**out, "rows": records(result.to_frame()), "notes": [str(n) for n in result.notes],
+            "n_target": plain(result.n_target)}

@@ -16,12 +16,14 @@ from __future__ import annotations
 import html
 import math
 
-__all__ = ["snapshot_html", "axis", "nice_ticks", "fmt", "placeholder_html"]
+__all__ = ["snapshot_html", "axis", "nice_ticks", "fmt", "placeholder_html", "target_row"]
 
 # Okabe-Ito colours (Okabe & Ito 2008, "Color Universal Design"): blue for strata, vermillion for
-# the overall row; grey for the null line.
+# the overall row, reddish purple for the effect transported to a target population; grey for the
+# null line.
 BLUE = "#0072B2"
 VERMILLION = "#D55E00"
+PURPLE = "#CC79A7"
 GREY = "#767676"
 
 ROW_H = 24
@@ -110,16 +112,36 @@ def _e(value) -> str:
     return html.escape("" if value is None else str(value), quote=True)
 
 
+def target_row(transport: dict | None) -> dict | None:
+    """The row of the transported effect (same rules as ``targetRow`` in the JS), or None.
+
+    ``transport`` is the Explorer's ``_transport`` (:func:`~.payload.transport_payload`). The row has
+    ``label`` ("target: <name>"), ``status`` ("ok" or "error"), ``message`` and, when ok, the
+    ``target`` row's numbers (estimate, ci_low, ci_high, p_value, mean_exposed, mean_unexposed).
+    """
+    if not transport or not transport.get("state"):
+        return None
+    label = f"target: {transport.get('name', 'target')}"
+    if transport["state"] != "ok":
+        return {"population": "target", "label": label, "status": "error",
+                "message": transport.get("message") or "The effect could not be transported."}
+    found = [r for r in transport.get("rows") or [] if r.get("population") == "target"]
+    if not found:
+        return None
+    return {**found[0], "label": label, "status": "ok", "message": ""}
+
+
 def _label(row: dict) -> str:
     return "overall" if row.get("stratum") == "overall" else str(row.get("stratum", ""))
 
 
-def _svg(payload: dict) -> str:
+def _svg(payload: dict, target: dict | None = None) -> str:
     rows = payload["rows"]
     left, right = LABEL_W + PAD, LABEL_W + PLOT_W - PAD
-    ax = axis(rows, payload["ratio"], payload["null"], left, right)
+    ax = axis(rows + ([target] if target else []), payload["ratio"], payload["null"], left, right)
     x = ax["x"]
-    height = HEAD_H + ROW_H * len(rows) + 28
+    shown = len(rows) + (1 if target else 0)
+    height = HEAD_H + ROW_H * shown + 28
     width = LABEL_W + PLOT_W + VALUE_W
     parts = [
         f'<svg xmlns="http://www.w3.org/2000/svg" class="sg-forest" width="{width}" height="{height}" '
@@ -128,7 +150,7 @@ def _svg(payload: dict) -> str:
         f'<text x="{LABEL_W + PLOT_W + 6}" y="{HEAD_H - 8}" fill="currentColor" font-weight="bold">'
         f'{_e(payload["measure"])} ({payload["level"]:.0%} interval)</text>',
     ]
-    bottom = HEAD_H + ROW_H * len(rows)
+    bottom = HEAD_H + ROW_H * shown
     xn = x(payload["null"])
     parts.append(
         f'<line class="sg-null" x1="{xn:.2f}" x2="{xn:.2f}" y1="{HEAD_H - 4}" y2="{bottom}" '
@@ -176,7 +198,39 @@ def _svg(payload: dict) -> str:
             f'<text x="{LABEL_W + PLOT_W + 6}" y="{cy + 4:.1f}" fill="currentColor"{weight}>{_e(text)}</text>'
         )
         parts.append("</g>")
+    if target:
+        parts.append(_svg_target(payload, target, x, HEAD_H + ROW_H * len(rows) + ROW_H / 2, left))
     parts.append("</svg>")
+    return "".join(parts)
+
+
+def _svg_target(payload: dict, row: dict, x, cy: float, left: float) -> str:
+    """The transported effect: a triangle in its own colour on the same axis, or the reason."""
+    parts = ['<g class="sg-target" data-population="target">',
+             f'<text x="4" y="{cy + 4:.1f}" fill="currentColor" font-style="italic">{_e(row["label"])}</text>']
+    est, lo, hi = row.get("estimate"), row.get("ci_low"), row.get("ci_high")
+    ratio = payload["ratio"]
+    if row["status"] == "ok" and est is not None and (est > 0 or not ratio):
+        if lo is not None and hi is not None and (lo > 0 or not ratio):
+            parts.append(
+                f'<line class="sg-ci" x1="{x(lo):.2f}" x2="{x(hi):.2f}" y1="{cy:.1f}" y2="{cy:.1f}" '
+                f'stroke="{PURPLE}" stroke-width="2"/>'
+            )
+        xe = x(est)
+        parts.append(
+            f'<path class="sg-point" d="M{xe:.2f} {cy - 6:.1f}L{xe + 6:.2f} {cy + 5:.1f}'
+            f'L{xe - 6:.2f} {cy + 5:.1f}Z" fill="{PURPLE}"/>'
+        )
+        text = f"{fmt(est)} ({fmt(lo)} to {fmt(hi)})"
+    else:
+        text = ""
+        parts.append(
+            f'<text class="sg-reason" x="{left}" y="{cy + 4:.1f}" fill="{GREY}" font-style="italic">'
+            "not transported (see below)</text>"
+        )
+    parts.append(
+        f'<text x="{LABEL_W + PLOT_W + 6}" y="{cy + 4:.1f}" fill="currentColor">{_e(text)}</text></g>'
+    )
     return "".join(parts)
 
 
@@ -194,7 +248,7 @@ _TABLE_COLUMNS = [
 ]
 
 
-def _table(payload: dict) -> str:
+def _table(payload: dict, target: dict | None = None) -> str:
     head = "".join(f'<th style="text-align:left;padding:2px 8px">{_e(t)}</th>' for _, t in _TABLE_COLUMNS)
     body = []
     for row in payload["rows"]:
@@ -210,10 +264,26 @@ def _table(payload: dict) -> str:
             cells.append(f'<td style="padding:2px 8px">{_e(text)}</td>')
         style = ' style="font-weight:bold"' if row.get("stratum") == "overall" else ""
         body.append(f'<tr data-stratum="{_e(row.get("stratum"))}"{style}>{"".join(cells)}</tr>')
+    if target:
+        body.append(_table_target(target))
     return (
         '<table class="sg-effects" style="border-collapse:collapse;font-size:12px">'
         f"<thead><tr>{head}</tr></thead><tbody>{''.join(body)}</tbody></table>"
     )
+
+
+def _table_target(row: dict) -> str:
+    """The table row of the transported effect: its numbers, or the reason it has none."""
+    cells = [f'<td style="padding:2px 8px;font-style:italic">{_e(row["label"])}</td>']
+    if row["status"] != "ok":
+        cells.append(f'<td class="sg-transport-message" colspan="{len(_TABLE_COLUMNS) - 1}" '
+                     f'style="padding:2px 8px;color:{VERMILLION}">{_e(row["message"])}</td>')
+    else:
+        for key, _ in _TABLE_COLUMNS[1:]:
+            text = "" if key in ("n", "n_exposed", "n_unexposed") else (
+                "transported" if key == "status" else fmt(row.get(key)))
+            cells.append(f'<td style="padding:2px 8px">{_e(text)}</td>')
+    return f'<tr class="sg-target" data-population="target">{"".join(cells)}</tr>'
 
 
 TEST_NAMES = {
@@ -255,8 +325,19 @@ def heterogeneity_line(payload: dict) -> str:
     return "Effect modification: " + " · ".join(pieces)
 
 
-def snapshot_html(payload: dict) -> str:
-    """Self-contained HTML (no scripts, no external resources) showing one result."""
+def snapshot_html(payload: dict, transport: dict | None = None) -> str:
+    """Self-contained HTML (no scripts, no external resources) showing one result.
+
+    ``transport`` is the Explorer's ``_transport`` (:func:`~.payload.transport_payload`): when a
+    target population is picked, its row follows the overall row in the table and the plot, with
+    its notes (or the reason it could not be transported) under them.
+    """
+    target = target_row(transport)
+    moved = ""
+    if target is not None:
+        items = [target["message"]] if target["status"] != "ok" else list(transport.get("notes") or [])
+        moved = (f'<ul class="sg-transport-notes">{"".join(f"<li>{_e(n)}</li>" for n in items)}</ul>'
+                 if items else "")
     title = (
         f"{payload['title']}: {payload['measure_name']} by "
         f"{', '.join(payload['modifiers']) or 'no modifier (overall only)'}; method {payload['method']}, "
@@ -266,8 +347,9 @@ def snapshot_html(payload: dict) -> str:
     return (
         '<div class="sg-snapshot" style="font-family:sans-serif;font-size:12px">'
         f"<p><strong>{_e(title)}</strong></p>"
-        f"{_table(payload)}"
-        f"<div>{_svg(payload)}</div>"
+        f"{_table(payload, target)}"
+        f"<div>{_svg(payload, target)}</div>"
+        f"{moved}"
         f'<p class="sg-het">{_e(heterogeneity_line(payload))}</p>'
         + (f"<ul>{notes}</ul>" if notes else "")
         + f"<p><em>{_e(payload['caution'])}</em></p>"
