@@ -25,7 +25,7 @@ from dataclasses import dataclass, field
 import numpy as np
 import pandas as pd
 
-__all__ = ["Design", "confounder_design", "independent_columns"]
+__all__ = ["Design", "confounder_design", "independent_columns", "independent_from_covariance"]
 
 RANK_TOL = 1e-9  # a column whose unexplained share of variance is below this is redundant
 
@@ -135,7 +135,20 @@ def independent_columns(x: np.ndarray, w: np.ndarray | None = None, tol: float =
     reason = [""] * p
     if p == 0 or total <= 0:
         return keep, ["constant"] * p
-    gram = _covariance(x, w, total)
+    return independent_from_covariance(_covariance(x, w, total), tol)
+
+
+def independent_from_covariance(gram: np.ndarray, tol: float = RANK_TOL):
+    """:func:`independent_columns` from the weighted covariance matrix (p, p) of the columns.
+
+    Shared with the engines (:mod:`stratagem.engines`), which get the matrix from an aggregate
+    query instead of the rows. Returns ``(keep, reason)`` as :func:`independent_columns` does.
+    """
+    p = gram.shape[0]
+    keep = np.zeros(p, dtype=bool)
+    reason = [""] * p
+    if p == 0:
+        return keep, reason
     scale = np.sqrt(np.maximum(np.diag(gram), 0.0))
     top = max(float(scale.max()), 1e-300)
     for j in range(p):

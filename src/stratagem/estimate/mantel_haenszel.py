@@ -95,15 +95,19 @@ def _column_codes(s: pd.Series, name: str) -> tuple[np.ndarray, int, str | None]
         edges = np.unique(np.quantile(x, np.linspace(0, 1, CONFOUNDER_BINS + 1)))
         inner = edges[1:-1]
         codes = np.searchsorted(inner, x, side="right").astype(np.int64)
-        shown = ", ".join(f"{e:.4g}" for e in inner)
-        note = (
-            f"Confounder {name!r} is numeric with {len(uniques)} distinct values: Mantel-Haenszel "
-            f"needs levels, so it was cut into {len(inner) + 1} quantile bins (cut points {shown}). "
-            "Residual confounding within bins is possible; pass a binned column to choose the cuts, "
-            "or use method='standardization', 'ipw' or 'aipw'."
-        )
-        return codes, len(inner) + 1, note
+        return codes, len(inner) + 1, binning_note(name, len(uniques), inner)
     return codes.astype(np.int64), max(len(uniques), 1), None
+
+
+def binning_note(name: str, n_distinct: int, inner) -> str:
+    """The note saying a numeric confounder was cut at ``inner`` cut points (shared with engines)."""
+    shown = ", ".join(f"{e:.4g}" for e in inner)
+    return (
+        f"Confounder {name!r} is numeric with {n_distinct} distinct values: Mantel-Haenszel "
+        f"needs levels, so it was cut into {len(inner) + 1} quantile bins (cut points {shown}). "
+        "Residual confounding within bins is possible; pass a binned column to choose the cuts, "
+        "or use method='standardization', 'ipw' or 'aipw'."
+    )
 
 
 def _compress(code: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
