@@ -99,6 +99,10 @@ def _cell(v, digits: int = 3) -> str:
     return _e(str(v))
 
 
+def _is_number(v) -> bool:
+    return isinstance(v, (int, float, np.integer, np.floating)) and not isinstance(v, (bool, np.bool_))
+
+
 def _table(frame: pd.DataFrame, columns: list[str] | None = None, headers: list[str] | None = None,
            digits: int = 3, cls: str = "") -> str:
     columns = list(frame.columns) if columns is None else columns
@@ -106,7 +110,11 @@ def _table(frame: pd.DataFrame, columns: list[str] | None = None, headers: list[
     head = "".join(f"<th>{_e(str(h))}</th>" for h in headers)
     rows = []
     for _, row in frame.iterrows():
-        cells = "".join(f"<td>{_cell(row[c], digits)}</td>" for c in columns)
+        cells = "".join(
+            f"<td>{_cell(row[c], digits)}</td>" if _is_number(row[c])
+            else f'<td class="sg-text">{_cell(row[c], digits)}</td>'
+            for c in columns
+        )
         rows.append(f"<tr>{cells}</tr>")
     klass = f' class="{_e(cls)}"' if cls else ""
     return f"<table{klass}><thead><tr>{head}</tr></thead><tbody>{''.join(rows)}</tbody></table>"
@@ -272,7 +280,8 @@ color:#1b1b1b;line-height:1.45;padding:0 1rem}
 h1{font-size:1.5rem;margin-bottom:.2rem}h2{font-size:1.15rem;margin-top:2rem;border-bottom:1px solid #ddd}
 table{border-collapse:collapse;margin:.5rem 0;font-size:.9rem}
 th,td{padding:.25rem .6rem;border-bottom:1px solid #e5e5e5;text-align:right;vertical-align:top}
-th:first-child,td:first-child{text-align:left}
+th:first-child,td:first-child,td.sg-text{text-align:left}
+td.sg-nowrap{white-space:nowrap}
 th{background:#f4f4f4}
 dl.sg-summary{display:grid;grid-template-columns:max-content 1fr;gap:.2rem 1rem}
 dl.sg-summary dt{font-weight:600}dl.sg-summary dd{margin:0}
@@ -325,7 +334,7 @@ def _effects_table(analysis: Analysis, digits: int) -> str:
             "<tr>"
             f"<td>{_e(label)}</td><td>{_count(r['n'])}</td><td>{_count(r['n_exposed'])}</td>"
             f"<td>{_count(r['n_unexposed'])}</td><td>{_num(r['mean_exposed'], digits)}</td>"
-            f"<td>{_num(r['mean_unexposed'], digits)}</td><td>{_e(eff)}</td>"
+            f"<td>{_num(r['mean_unexposed'], digits)}</td><td class=\"sg-nowrap\">{_e(eff)}</td>"
             f"<td>{_num(r['se'], digits)}</td><td>{_p(r['p_value'])}</td><td>{_e(str(r['status']))}</td>"
             "</tr>"
         )
