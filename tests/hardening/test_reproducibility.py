@@ -40,6 +40,17 @@ def cases() -> list[dict]:
 
 
 CASES = cases()
+ROWS = 1500  # a smaller demo table keeps the fresh-process runs short
+# BLAS splits work across threads only for large enough products: the thread checks use the full
+# demo table (4000 rows), with every bootstrap case and one Wald case per method.
+THREAD_ROWS = 4000
+THREAD_CASES = [c for c in CASES if c.get("interval") == "bootstrap" or c["measure"] == "rd"]
+THREAD_IDS = [f"{c['method']}-{c['measure']}-{c.get('interval', 'wald')}" for c in THREAD_CASES]
+
+
+@pytest.fixture(scope="module")
+def demo_small():
+    return sg.demo_data(n=ROWS)
 CASE_IDS = [f"{c['method']}-{c['measure']}-{c.get('interval', 'wald')}" for c in CASES]
 
 
@@ -65,36 +76,39 @@ SCRIPT = textwrap.dedent(
     import json, sys
     import stratagem as sg
     sys.path.insert(0, sys.argv[1])
-    from test_reproducibility import CASES, fingerprint
-    df = sg.demo_data()
-    print(json.dumps([fingerprint(sg.analyze(df, **case)) for case in CASES]))
+    import test_reproducibility as t
+    cases, rows = (t.CASES, t.ROWS) if sys.argv[2] == "all" else (t.THREAD_CASES, t.THREAD_ROWS)
+    df = sg.demo_data(n=rows)
+    print(json.dumps([t.fingerprint(sg.analyze(df, **case)) for case in cases]))
     """
 )
 
 
 def run_elsewhere(threads: int | None = None) -> list:
-    """Fingerprints of every case computed in a fresh Python process."""
+    """Fingerprints computed in a fresh Python process: every case of CASES on ROWS rows, or, with
+    ``threads``, the THREAD_CASES on THREAD_ROWS rows with that many BLAS threads."""
     env = dict(os.environ)
     if threads is not None:
         for var in ("OMP_NUM_THREADS", "OPENBLAS_NUM_THREADS", "MKL_NUM_THREADS", "BLIS_NUM_THREADS",
                     "VECLIB_MAXIMUM_THREADS", "NUMEXPR_NUM_THREADS"):
             env[var] = str(threads)
     here = os.path.dirname(os.path.abspath(__file__))
-    done = subprocess.run([sys.executable, "-c", SCRIPT, here], capture_output=True, text=True, env=env,
+    which = "all" if threads is None else "threads"
+    done = subprocess.run([sys.executable, "-c", SCRIPT, here, which], capture_output=True, text=True, env=env,
                           timeout=600, check=False)
     assert done.returncode == 0, done.stderr[-3000:]
     return json.loads(done.stdout.strip().splitlines()[-1])
 
 
 @pytest.fixture(scope="module")
-def here_fingerprints(demo_table):
-    return [fingerprint(sg.analyze(demo_table, **case)) for case in CASES]
+def here_fingerprints(demo_small):
+    return [fingerprint(sg.analyze(demo_small, **case)) for case in CASES]
 
 
 @pytest.mark.parametrize("case", CASES, ids=CASE_IDS)
-def test_bit_identical_across_runs(demo_table, case):
-    first = fingerprint(sg.analyze(demo_table, **case))
-    second = fingerprint(sg.analyze(demo_table.copy(), **case))
+def test_bit_identical_across_runs(demo_small, case):
+    first = fingerprint(sg.analyze(demo_small, **case))
+    second = fingerprint(sg.analyze(demo_small.copy(), **case))
     assert first == second
 
 
@@ -106,19 +120,20 @@ def test_bit_identical_in_a_separate_process(here_fingerprints):
 
 
 @pytest.fixture(scope="module")
-def thread_runs(here_fingerprints):
-    """Fingerprints with one BLAS thread and with two (threadpoolctl if installed, else fresh
-    processes with the thread-count environment variables set)."""
+def thread_runs():
+    """Fingerprints of THREAD_CASES with one BLAS thread and with two (threadpoolctl if installed,
+    else fresh processes with the thread-count environment variables set), and in this process."""
+    df = sg.demo_data(n=THREAD_ROWS)
+    here = [fingerprint(sg.analyze(df, **case)) for case in THREAD_CASES]
     try:
         from threadpoolctl import threadpool_limits
     except ImportError:
-        return run_elsewhere(threads=1), run_elsewhere(threads=2)
-    df = sg.demo_data()
+        return run_elsewhere(threads=1), run_elsewhere(threads=2), here
     runs = []
     for threads in (1, 2):
         with threadpool_limits(limits=threads):
-            runs.append([fingerprint(sg.analyze(df, **case)) for case in CASES])
-    return tuple(runs)
+            runs.append([fingerprint(sg.analyze(df, **case)) for case in THREAD_CASES])
+    return runs[0], runs[1], here
 
 
 def _relative_gap(a: list, b: list) -> float:
@@ -136,22 +151,23 @@ def _relative_gap(a: list, b: list) -> float:
     return worst
 
 
-def test_results_do_not_depend_on_blas_threads(thread_runs, here_fingerprints):
+def test_results_do_not_depend_on_blas_threads(thread_runs):
     """Wald results are bit-identical; bootstrap results agree to 1e-12 (see the strict test below)."""
-    one, two = thread_runs
-    for case, case_id, a, b, mine in zip(CASES, CASE_IDS, one, two, here_fingerprints):
+    one, two, mine = thread_runs
+    assert len(one) == len(two) == len(THREAD_CASES)
+    for case, case_id, a, b, c in zip(THREAD_CASES, THREAD_IDS, one, two, mine):
         if case.get("interval") != "bootstrap":
-            assert a == b == mine, f"{case_id} depends on the number of BLAS threads"
+            assert a == b == c, f"{case_id} depends on the number of BLAS threads"
         else:
             assert _relative_gap(a, b) < 1e-12, case_id
-            assert _relative_gap(a, mine) < 1e-12, case_id
+            assert _relative_gap(a, c) < 1e-12, case_id
 
 
 BLAS_DEFECT = (
     "estimate/_adjust.py + glm.py batched bootstrap: replicate fits and means use BLAS matrix products "
     "over the (B, n) weight matrix whose summation order changes with the number of BLAS threads, so "
     "bootstrap se, ci_low, ci_high and p_value differ in the last bits (relative 1e-15 to 1e-13 on "
-    "the demo table) between OPENBLAS_NUM_THREADS=1 and 2; Wald results are bit-identical"
+    "the 4000-row demo table) between OPENBLAS_NUM_THREADS=1 and 2; Wald results are bit-identical"
 )
 
 
@@ -164,16 +180,16 @@ def _bootstrap_param(method):
 
 @pytest.mark.parametrize("method", [_bootstrap_param(m) for m in AVAILABLE if m != "exact"])
 def test_bootstrap_bit_identical_whatever_the_blas_threads(thread_runs, method):
-    one, two = thread_runs
-    for case, case_id, a, b in zip(CASES, CASE_IDS, one, two):
+    one, two, _ = thread_runs
+    for case, case_id, a, b in zip(THREAD_CASES, THREAD_IDS, one, two):
         if case["method"] == method and case.get("interval") == "bootstrap":
             assert a == b, f"{case_id} differs between 1 and 2 BLAS threads"
 
 
-def test_a_different_random_state_changes_only_the_bootstrap(demo_table):
+def test_a_different_random_state_changes_only_the_bootstrap(demo_small):
     case = next(c for c in CASES if c.get("interval") == "bootstrap")
-    a = sg.analyze(demo_table, **case)
-    b = sg.analyze(demo_table, **dict(case, seed=case["seed"] + 1))
+    a = sg.analyze(demo_small, **case)
+    b = sg.analyze(demo_small, **dict(case, seed=case["seed"] + 1))
     assert a.overall["estimate"] == b.overall["estimate"]  # the point estimate is not random
     assert a.overall["ci_low"] != b.overall["ci_low"]  # the replicates are
 
@@ -207,9 +223,9 @@ RECIPES = _recipe_cases()
 
 
 @pytest.mark.parametrize("case", RECIPES, ids=[f"{c['method']}-{i}" for i, c in enumerate(RECIPES)])
-def test_recipe_round_trips(demo_table, case):
-    a = sg.analyze(demo_table, **case)
-    namespace = {"df": demo_table.copy()}
+def test_recipe_round_trips(demo_small, case):
+    a = sg.analyze(demo_small, **case)
+    namespace = {"df": demo_small.copy()}
     exec(compile(a.recipe(), "<recipe>", "exec"), namespace)  # the test runs generated code on purpose
     b = namespace["analysis"]
     assert b.spec == a.spec
