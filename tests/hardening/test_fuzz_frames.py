@@ -12,11 +12,11 @@ from __future__ import annotations
 import numpy as np
 import pandas as pd
 import pytest
+from hardening_helpers import assert_ok_rows_finite, method_available
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
 import stratagem as sg
-from hardening_helpers import assert_ok_rows_finite, method_available
 from stratagem.errors import StratagemError
 from stratagem.spec import METHODS
 

@@ -12,10 +12,6 @@ from __future__ import annotations
 import numpy as np
 import pandas as pd
 import pytest
-from hypothesis import given, settings
-from hypothesis import strategies as st
-
-import stratagem as sg
 from hardening_helpers import (
     assert_ok_rows_finite,
     assert_same_numbers,
@@ -24,6 +20,10 @@ from hardening_helpers import (
     method_params,
     random_table,
 )
+from hypothesis import given, settings
+from hypothesis import strategies as st
+
+import stratagem as sg
 
 random_states = st.integers(0, 2**32 - 1)
 # Tests repeated for every method draw a quarter of the profile's examples (10 in "ci", 250 in

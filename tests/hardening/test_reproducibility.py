@@ -15,9 +15,9 @@ import textwrap
 import numpy as np
 import pandas as pd
 import pytest
+from hardening_helpers import method_available
 
 import stratagem as sg
-from hardening_helpers import method_available
 from stratagem.spec import METHODS, Spec
 
 AVAILABLE = [m for m in METHODS if method_available(m)]

@@ -16,9 +16,9 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 import pytest
+from hardening_helpers import method_params, random_table
 
 import stratagem as sg
-from hardening_helpers import method_params, random_table
 
 PACKAGE = Path(sg.__file__).resolve().parent
 SOURCES = sorted(PACKAGE.rglob("*.py"))
