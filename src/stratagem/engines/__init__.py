@@ -1,0 +1,219 @@
+"""Analyse tables that live in an engine: a DuckDB relation, Parquet file(s), or a PySpark DataFrame.
+
+:func:`stratagem.analyze` hands any input that is not a pandas DataFrame to :func:`analyze_engine`,
+which returns the same :class:`~stratagem.results.Analysis` (same tables, same columns, the same
+numbers as the in-memory path on the same rows) while the rows stay in the engine:
+
+* crude and Mantel-Haenszel need only counts per cell, so one grouped query builds a small table of
+  counts (:func:`.passes.cell_table`) and the in-memory estimators, tests and toolkit run on it;
+* standardization, IPW and AIPW fit their per-stratum models by Newton/IRLS in which every iteration
+  is one grouped query (``X'WX`` and ``X'W(z)`` per stratum), then two more queries give the
+  potential-outcome means and the influence-function variances (:func:`.passes.model_means`).
+
+Bootstrap intervals (crude and Mantel-Haenszel with a 0/1 outcome) resample individuals through the
+table of counts: drawing ``n`` individuals with replacement and counting them per cell is one
+multinomial draw over the cells with probabilities proportional to their counts, which is what
+:func:`stratagem.estimate.bootstrap.replicate_weights` draws on a table of counts (Efron &
+Tibshirani 1993, *An Introduction to the Bootstrap*, ch. 6; the equivalence is the definition of the
+multinomial). The replicates have the same distribution as on the raw rows, but not the same random
+stream, so engine and in-memory bootstrap intervals agree within Monte Carlo error, not digit for digit.
+"""
+
+from __future__ import annotations
+
+from dataclasses import replace
+from typing import Any, Callable
+
+import numpy as np
+import pandas as pd
+
+from .. import frame as fr
+from ..errors import SpecError
+from ..results import DIAGNOSTIC_COLUMNS, OVERALL_FIELDS, Analysis
+from ..spec import Spec
+from . import passes
+from .duckdb_engine import from_duckdb, is_duckdb
+from .spark_engine import SparkSource, is_spark
+
+__all__ = ["analyze_engine", "is_engine_input", "source_for"]
+
+MODEL_METHODS = ("standardization", "ipw", "aipw")
+
+
+def is_engine_input(data: Any) -> bool:
+    """Whether ``data`` is a table an engine holds (DuckDB relation, Parquet path, Spark DataFrame)."""
+    return is_duckdb(data) or is_spark(data)
+
+
+def source_for(data: Any):
+    """The engine adapter (:class:`~.source.Source`) for ``data``."""
+    if is_spark(data):
+        return SparkSource(data)
+    if is_duckdb(data):
+        return from_duckdb(data)
+    raise TypeError(f"not an engine table: {type(data).__name__}")
+
+
+def _engine_limits(spec: Spec) -> None:
+    """Options the engines do not offer yet: refuse them up front, saying what to do instead."""
+    if spec.method == "exact" or spec.potential_outcomes is not None:
+        raise SpecError(
+            "method='exact' (potential_outcomes=) is not available for tables in an engine; "
+            "select the needed columns into pandas first, e.g. relation.df()."
+        )
+    if spec.truncate is not None:
+        raise SpecError(
+            "truncate= is not available for tables in an engine yet (weight percentiles would need a "
+            "sort of every row); pass truncate=None, or analyse the table in pandas."
+        )
+
+
+def analyze_engine(data: Any, spec: Spec, progress: Callable[[float], None] | None = None) -> Analysis:
+    """:func:`stratagem.analyze` for a table in an engine; see the module docstring.
+
+    Parameters
+    ----------
+    data : duckdb.DuckDBPyRelation, str or pathlib.Path (Parquet), or pyspark.sql.DataFrame
+        Only read; never copied into Python.
+    spec : Spec
+        The analysis (validated).
+    progress : callable, optional
+        Bootstrap progress, as for :func:`stratagem.analyze`.
+
+    Returns
+    -------
+    Analysis
+        As for a pandas DataFrame. ``extra["engine"]`` says which engine held the data and how many
+        full scans of how many rows were made; the Checks (``diagnostics``) say the same.
+    """
+    _engine_limits(spec)
+    src = source_for(data)
+    method_hint = spec.method
+    ins = passes.inspect(src, spec, confounder_levels=method_hint in MODEL_METHODS)
+    resolved = fr.resolve(spec, ins.binary)
+    model = resolved.method in MODEL_METHODS
+    if resolved.interval == "bootstrap" and (model or not ins.binary):
+        raise SpecError(
+            "interval='bootstrap' is available in an engine for methods 'crude' and 'mantel-haenszel' "
+            "with a 0/1 outcome; pass interval='wald' (influence-function intervals) here."
+        )
+    mh = resolved.method == "mantel-haenszel"
+    table, mh_notes = passes.cell_table(src, resolved, ins, confounders=mh)
+    if not ins.binary:
+        table = passes.moment_rows(table, resolved.outcome, ins.centre)
+    bins = {name: edges for name, _, edges, _ in ins.keys if edges is not None}
+    key_notes = [note for _, _, _, note in ins.keys if note]
+    confounders = ()
+    if resolved.method in ("crude", "mantel-haenszel"):
+        confounders = tuple(passes.confounder_alias(i) for i in range(len(resolved.confounders)))
+    if resolved.method == "crude":  # crude ignores confounders but says so: keep placeholders
+        for name in confounders:
+            table[name] = 0.0
+    cspec = resolved.replace(counts=passes.COUNT, bins=bins, confounders=confounders, interval="wald"
+                             if model else resolved.interval)
+    if model:
+        result = _model_analysis(src, resolved, cspec, ins, table)
+    else:
+        from ..analysis import analyze
+
+        result = analyze(table, cspec, progress=progress)
+    notes = list(result.notes)[len(bins):]  # the table of counts' own binning notes, replaced below
+    notes = list(ins.notes) + key_notes + mh_notes + notes
+    scanned = f"{src.scans} full scan(s) of {ins.n_input:,} rows"
+    notes.append(f"The data stayed in {src.engine}: {scanned}; only aggregates came back to Python.")
+    extra = dict(result.extra)
+    extra["engine"] = {"engine": src.engine, "scans": src.scans, "rows": ins.n_input}
+    extra["bin_edges"] = dict(bins)
+    return replace(
+        result,
+        spec=resolved,
+        notes=tuple(notes),
+        n_input=ins.n_input,
+        n_dropped=ins.n_input - ins.n_kept,
+        diagnostics=_engine_diagnostics(result, src, ins),
+        heterogeneity=_engine_heterogeneity(result, resolved),
+        extra=extra,
+    )
+
+
+def _model_analysis(src, spec: Spec, cspec: Spec, ins, table: pd.DataFrame) -> Analysis:
+    """Standardization, IPW or AIPW: strata from the table of counts, models fitted in the engine."""
+    from ..analysis import _effects_table, _extension, extensions
+
+    prep, _ = fr.prepare(table, cspec.replace(method="crude", interval="wald"))
+    keys_to_stratum = {}
+    key_cols = []
+    for name, _, edges, _ in ins.keys:
+        col = table[name].to_numpy()
+        key_cols.append(np.searchsorted(np.asarray(edges), col.astype(float)) if edges is not None else col)
+    for i in range(len(table)):
+        keys_to_stratum.setdefault(tuple(c[i] for c in key_cols), int(prep.stratum[i]))
+    gm = passes.model_means(src, spec, ins, prep, keys_to_stratum, name=spec.method)
+    frame = _effects_table(prep, spec, gm, None)
+    strata = frame.iloc[:-1].reset_index(drop=True) if spec.strata else frame.iloc[0:0]
+    overall = frame.iloc[-1][OVERALL_FIELDS].rename("overall")
+    fields = dict(
+        spec=spec, overall=overall, strata=strata, notes=tuple(prep.notes) + tuple(gm.notes),
+        n_input=ins.n_input, n_dropped=ins.n_input - ins.n_kept,
+        extra={"replicates": None, "replicate_theta": None, "bin_edges": {},
+               "covariance": {"v11": gm.v11, "v00": gm.v00, "v10": gm.v10}, **gm.extra},
+    )
+    for path in extensions:
+        step = _extension(path)
+        if step is not None:
+            fields.update(step(prep, spec, gm, fields))
+    return Analysis(**fields)
+
+
+def _engine_diagnostics(result: Analysis, src, ins) -> pd.DataFrame:
+    """The arm sizes of the in-memory Checks, the propensity and weight checks computed in the
+    engine (model-based methods), and a row saying where the data lives and how much was scanned."""
+    diag = result.diagnostics
+    if diag is None or len(diag) == 0:
+        diag = pd.DataFrame(columns=DIAGNOSTIC_COLUMNS)
+    keep = diag[diag["check"] == "n"]
+    extra_rows = []
+    checks = result.extra.get("engine_checks")
+    names = list(result.strata["stratum"]) if len(result.strata) else ["all"]
+    if checks is not None and len(checks):
+        from ..diagnostics import ESS_SHARE, PROPENSITY_LIMITS
+
+        arms = (("exposed", "1"), ("unexposed", "0"))
+        for s, label in enumerate(names):
+            row = checks.iloc[s]
+            for arm, j in arms:
+                lo, hi = float(row[f"emin{j}"]), float(row[f"emax{j}"])
+                extra_rows.append((label, "propensity min", arm, lo,
+                                   f"propensities below {PROPENSITY_LIMITS[0]} in the {arm} arm: positivity "
+                                   "doubtful" if lo < PROPENSITY_LIMITS[0] else ""))
+                extra_rows.append((label, "propensity max", arm, hi,
+                                   f"propensities above {PROPENSITY_LIMITS[1]} in the {arm} arm: positivity "
+                                   "doubtful" if hi > PROPENSITY_LIMITS[1] else ""))
+                if f"swmax{j}" in checks:
+                    s1, s2 = float(row[f"sws{j}"]), float(row[f"swss{j}"])
+                    ess = s1 * s1 / s2 if s2 > 0 else np.nan
+                    n_arm = keep[(keep["stratum"] == label) & (keep["arm"] == arm)]["value"]
+                    n_arm = float(n_arm.iloc[0]) if len(n_arm) else np.nan
+                    extra_rows.append((label, "largest weight", arm, float(row[f"swmax{j}"]), ""))
+                    extra_rows.append((label, "effective sample size", arm, ess,
+                                       f"effective sample size under {ESS_SHARE:.0%} of the {arm} arm's rows: "
+                                       "a few rows carry most of the weight" if ess < ESS_SHARE * n_arm else ""))
+    where = (f"data in {src.engine}: {src.scans} full scan(s) of {ins.n_input:,} rows; balance (SMD) "
+             "checks are computed only for tables in memory")
+    extra_rows.append(("overall", "rows scanned", "all", float(ins.n_input), where))
+    more = pd.DataFrame(extra_rows, columns=DIAGNOSTIC_COLUMNS)
+    return pd.concat([keep, more], ignore_index=True)[DIAGNOSTIC_COLUMNS]
+
+
+def _engine_heterogeneity(result: Analysis, spec: Spec) -> pd.DataFrame:
+    """The in-memory tests, except the confounder-adjusted likelihood-ratio test, which would refit
+    the working model on every row: it is left out (NaN) with a note, as for large tables in memory."""
+    het = result.heterogeneity
+    if het is None or spec.method not in MODEL_METHODS + ("mantel-haenszel",) or not spec.confounders:
+        return het
+    het = het.copy()
+    at = het["test"] == "interaction_lr"
+    het.loc[at, ["statistic", "p_value"]] = np.nan
+    het.loc[at, "note"] = ("not computed: the table lives in an engine, where refitting the working model "
+                           "with confounders would scan every row again; see interaction_wald")
+    return het

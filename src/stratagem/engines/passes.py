@@ -1,0 +1,775 @@
+"""Aggregate passes shared by the engines: checks, counts per cell, and the model fits.
+
+Every function here reads the table only through :meth:`Source.run` with SQL built by :mod:`.sql`,
+and brings back small aggregates (one row per stratum, cell or level). The passes are:
+
+1. **Checks** (:func:`inspect`): column names and types from the schema (no rows read), then one query
+   counting missing values per used column and one over the complete rows (distinct counts, ranges,
+   whether the outcome is 0/1, the smallest frequency). Bad input raises the same
+   :class:`~stratagem.errors.StratagemError` subclasses, with the same messages, as for pandas, before
+   any heavy query runs.
+2. **Cells** (:func:`cell_table`): one grouped query giving, per combination of modifier levels (or
+   bins), exposure, outcome (0/1 outcome) and, for Mantel-Haenszel, confounder levels, the sum of the
+   frequencies. For a numeric outcome each group returns the frequency, the sum of the centred outcome
+   and of its square; :func:`moment_rows` turns each group into two rows with half the frequency at
+   ``mean +- sd`` (population sd), which have exactly the group's frequency, mean and sum of squares,
+   all that the crude and Mantel-Haenszel estimators use. The in-memory estimators then run on this
+   small table of counts, so the numbers are the in-memory ones.
+3. **Models** (:func:`model_means`): standardization, IPW and AIPW, fitted per stratum by Newton/IRLS
+   in which every iteration is one grouped query returning ``X'WX`` and ``X'W(z)`` per stratum for the
+   propensity and the outcome model at once; then one query for the potential-outcome means and the
+   derivatives the influence functions need, and one for the influence-function variances.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+
+import numpy as np
+import pandas as pd
+
+from .. import frame as fr
+from ..errors import (
+    DataError,
+    MissingValuesError,
+    ModifierError,
+    OutcomeError,
+)
+from ..estimate import glm
+from ..estimate.base import OK, GroupMeans
+from ..estimate.design import _levels, independent_from_covariance
+from ..estimate.mantel_haenszel import CONFOUNDER_BINS, LEVEL_THRESHOLD, binning_note
+from ..spec import Spec
+from . import sql
+from .sql import Frag, fmt, join, raw, value
+
+__all__ = ["Inspection", "inspect", "cell_table", "moment_rows", "model_means", "MAX_LEVELS_FETCHED"]
+
+MAX_LEVELS_FETCHED = 1000  # distinct values brought back to label levels or to word an error
+COUNT = "__stratagem_count__"  # frequency column of the table of counts (never a user column)
+
+
+# -- expressions --------------------------------------------------------------------------------
+
+def _col(src, name: str) -> Frag:
+    return src.dialect.ident(name)
+
+
+def _as_double(src, name: str) -> Frag:
+    if src.kinds[name] == "bool":
+        return fmt("(CASE WHEN {} THEN 1.0 ELSE 0.0 END)", _col(src, name))
+    return fmt("CAST({} AS DOUBLE)", _col(src, name))
+
+
+def _missing(src, name: str) -> Frag:
+    c = _col(src, name)
+    if src.kinds[name] == "float":
+        return fmt("({} IS NULL OR {})", c, src.dialect.isnan(c))
+    return fmt("({} IS NULL)", c)
+
+
+def _case_codes(expr: Frag, values) -> Frag:
+    """``CASE WHEN expr = v0 THEN 0 WHEN expr = v1 THEN 1 ... END`` (values as parameters)."""
+    parts = [fmt("WHEN {} = {} THEN {}", expr, value(v), value(i)) for i, v in enumerate(values)]
+    return fmt("(CASE {} END)", join(" ", parts))
+
+
+def _bin_index(expr: Frag, edges) -> Frag:
+    """Index of the bin of ``edges`` holding ``expr``, as ``frame``'s binning: [e_i, e_i+1), last closed."""
+    inner = list(edges[1:-1])
+    if not inner:
+        return raw("0")
+    parts = [fmt("WHEN {} < {} THEN {}", expr, value(float(e)), value(i)) for i, e in enumerate(inner)]
+    return fmt("(CASE {} ELSE {} END)", join(" ", parts), value(len(inner)))
+
+
+def _searchsorted_right(expr: Frag, inner) -> Frag:
+    """Number of cut points ``<= expr`` (``np.searchsorted(inner, x, side="right")``)."""
+    if len(inner) == 0:
+        return raw("0")
+    parts = [fmt("WHEN {} < {} THEN {}", expr, value(float(e)), value(i)) for i, e in enumerate(inner)]
+    return fmt("(CASE {} ELSE {} END)", join(" ", parts), value(len(inner)))
+
+
+def _expit(eta: Frag) -> tuple[Frag, Frag]:
+    """``expit(eta)`` and ``1 - expit(eta)`` without overflow (exp of a non-positive number only)."""
+    mu = fmt("(CASE WHEN {} >= 0 THEN 1.0 / (1.0 + EXP(-{})) ELSE EXP({}) / (1.0 + EXP({})) END)",
+             eta, eta, eta, eta)
+    rest = fmt("(CASE WHEN {} >= 0 THEN EXP(-{}) / (1.0 + EXP(-{})) ELSE 1.0 / (1.0 + EXP({})) END)",
+               eta, eta, eta, eta)
+    return mu, rest
+
+
+def _select(items: list[tuple[str, Frag]]) -> Frag:
+    return join(", ", [fmt("{} AS " + alias, e) for alias, e in items])
+
+
+# -- pass 1: checks -----------------------------------------------------------------------------
+
+@dataclass
+class Inspection:
+    """What the checks found: row counts, the outcome's type, modifier binning, confounder levels."""
+
+    n_input: int
+    n_kept: int
+    notes: list
+    where: Frag
+    binary: bool
+    centre: float
+    keys: list  # per modifier: (name, expr, edges or None, note or None)
+    distinct: dict = field(default_factory=dict)
+    ranges: dict = field(default_factory=dict)
+
+
+def _used(spec: Spec) -> list[str]:
+    return list(dict.fromkeys(name for _, name in fr._used_columns(spec)))
+
+
+def _check_schema(src, spec: Spec) -> None:
+    dup = sorted({c for c in src.columns if src.columns.count(c) > 1})
+    if dup:
+        raise DataError(f"Column names {dup} appear more than once; rename them so each is unique.")
+    fr._check_columns(pd.DataFrame(columns=src.columns), spec)
+    for role, name in fr._used_columns(spec):
+        kind = src.kinds[name]
+        if kind == "other":
+            raise DataError(
+                f"Column {name!r} (given as {role}) has the {src.engine} type {src.types[name]}, which "
+                "stratagem cannot analyse. Cast it to a number, a boolean or text in the query first."
+            )
+        if role == "counts" and kind not in ("numeric", "float"):
+            raise DataError(
+                f"counts column {spec.counts!r} must hold non-negative numbers (frequencies); "
+                "fix or remove it."
+            )
+
+
+def _distinct(src, name: str, where: Frag, limit: int = MAX_LEVELS_FETCHED + 1) -> list:
+    c = _col(src, name)
+    q = fmt("SELECT DISTINCT {} AS v FROM {} WHERE {} LIMIT " + str(int(limit)), c, src.table, where)
+    got = src.run(q)
+    return list(got["v"]) if len(got) else []
+
+
+def inspect(src, spec: Spec, *, confounder_levels: bool) -> Inspection:
+    """Checks of the table against the Spec: the same errors as :func:`stratagem.frame.prepare`."""
+    _check_schema(src, spec)
+    used = _used(spec)
+    # missing values per used column (one scan)
+    items = [("n_input", raw("COUNT(*)"))]
+    items += [(f"m{i}", fmt("SUM(CASE WHEN {} THEN 1 ELSE 0 END)", _missing(src, c))) for i, c in enumerate(used)]
+    got = src.run(fmt("SELECT {} FROM {}", _select(items), src.table)).iloc[0]
+    n_input = int(got["n_input"])
+    miss = {c: int(got[f"m{i}"] or 0) for i, c in enumerate(used)}
+    bad = {k: v for k, v in miss.items() if v}
+    where = join(" AND ", [fmt("NOT {}", _missing(src, c)) for c in used])
+    notes = []
+    if bad:
+        described = ", ".join(f"{k!r}: {v}" for k, v in bad.items())
+        if spec.missing == "raise":
+            raise MissingValuesError(
+                f"Missing values in used columns ({described}). Fill or remove them, "
+                "or pass missing='drop' to analyse complete rows only."
+            )
+    # statistics of the complete rows (one scan)
+    items = [("n_kept", raw("COUNT(*)")), ("n_exp", fmt("COUNT(DISTINCT {})", _col(src, spec.exposure)))]
+    y = _as_double(src, spec.outcome) if src.kinds[spec.outcome] != "string" else None
+    w = _as_double(src, spec.counts) if spec.counts else raw("1.0")
+    if y is not None:
+        items += [
+            ("y_not01", fmt("SUM(CASE WHEN {} = 0.0 OR {} = 1.0 THEN 0 ELSE 1 END)", y, y)),
+            ("y_inf", fmt("SUM(CASE WHEN ABS({}) = {} THEN 1 ELSE 0 END)", y, value(float("inf")))),
+            ("sw", fmt("SUM({})", w)),
+            ("swy", fmt("SUM({} * {})", w, y)),
+        ]
+    if spec.counts:
+        items.append(("w_min", fmt("MIN({})", w)))
+    numeric_names = [c for c in list(spec.strata) + list(spec.confounders)
+                     if src.kinds[c] in ("numeric", "float")]
+    for i, c in enumerate(list(spec.strata) + list(spec.confounders)):
+        items.append((f"d{i}", fmt("COUNT(DISTINCT {})", _col(src, c))))
+        if c in numeric_names:
+            items += [(f"lo{i}", fmt("MIN({})", _as_double(src, c))), (f"hi{i}", fmt("MAX({})", _as_double(src, c)))]
+    stats = src.run(fmt("SELECT {} FROM {} WHERE {}", _select(items), src.table, where)).iloc[0]
+    n_kept = int(stats["n_kept"])
+    if bad:
+        notes.append(f"{n_input - n_kept} row(s) with missing values dropped "
+                     f"({', '.join(f'{k!r}: {v}' for k, v in bad.items())}).")
+    if n_kept == 0:
+        raise DataError(
+            "No complete rows to analyse"
+            + (" after dropping rows with missing values" if n_input else "")
+            + ". Check the columns named in the analysis."
+        )
+    if spec.counts and float(stats["w_min"]) < 0:
+        raise DataError(
+            f"counts column {spec.counts!r} must hold non-negative numbers (frequencies); fix or remove it."
+        )
+    if int(stats["n_exp"]) > 2:
+        levels = _distinct(src, spec.exposure, where)
+        if len(levels) <= MAX_LEVELS_FETCHED:
+            fr._code_exposure(pd.Series(levels), spec)  # raises the in-memory error
+        raise fr.ExposureError(
+            f"Exposure {spec.exposure!r} must be binary (0/1, True/False, or two levels with "
+            f"exposed_level=); found {int(stats['n_exp'])} levels. Recode it to two levels."
+        )
+    if y is None:
+        levels = _distinct(src, spec.outcome, where, limit=10)
+        raise OutcomeError(
+            f"Outcome {spec.outcome!r} is not numeric (levels: {sorted(map(repr, levels))[:10]}). Recode "
+            "it as 0/1 for a binary outcome, or as numbers for a numeric outcome."
+        )
+    if int(stats["y_inf"] or 0):
+        raise OutcomeError(f"Outcome {spec.outcome!r} has infinite values; remove or recode those rows.")
+    binary = int(stats["y_not01"] or 0) == 0
+    sw = float(stats["sw"] or 0.0)
+    centre = float(stats["swy"]) / sw if sw > 0 else 0.0
+    distinct, ranges = {}, {}
+    for i, c in enumerate(list(spec.strata) + list(spec.confounders)):
+        distinct[c] = int(stats[f"d{i}"])
+        if c in numeric_names:
+            ranges[c] = (float(stats[f"lo{i}"]), float(stats[f"hi{i}"]))
+    keys = [_modifier_key(src, spec, name, where, distinct[name], ranges.get(name)) for name in spec.strata]
+    return Inspection(n_input, n_kept, notes, where, binary, centre, keys, distinct, ranges)
+
+
+def _quantile_edges(src, spec: Spec, name: str, where: Frag, probs) -> np.ndarray:
+    x = _as_double(src, name)
+    if spec.counts is None:  # exact quantiles in the engine (linear interpolation, as numpy's default)
+        items = [(f"q{i}", src.dialect.quantile(x, q)) for i, q in enumerate(probs)]
+        got = src.run(fmt("SELECT {} FROM {} WHERE {}", _select(items), src.table, where)).iloc[0]
+        return np.array([float(got[f"q{i}"]) for i in range(len(probs))])
+    # with frequencies: the distinct values and their total frequency, then frame's weighted quantiles
+    w = _as_double(src, spec.counts)
+    got = src.run(fmt("SELECT {} AS v, SUM({}) AS n FROM {} WHERE {} GROUP BY {}", x, w, src.table, where, x))
+    return fr._quantiles(got["v"].to_numpy(float), got["n"].to_numpy(float), np.asarray(probs))
+
+
+def _modifier_key(src, spec: Spec, name: str, where: Frag, n_distinct: int, rng):
+    """(name, grouping expression, bin edges or None, note or None) for one modifier."""
+    rule = spec.bins.get(name)
+    if src.kinds[name] in ("numeric", "float"):
+        if rule is None and n_distinct > fr.BIN_THRESHOLD:
+            rule = fr.DEFAULT_BINS
+        if rule is None:
+            return name, _col(src, name), None, None
+        if isinstance(rule, int):
+            edges = np.unique(_quantile_edges(src, spec, name, where, np.linspace(0, 1, rule + 1)))
+            if len(edges) < 3:
+                raise ModifierError(
+                    f"Modifier {name!r} has too few distinct values for {rule} quantile bins; "
+                    "pass fewer bins or explicit edges in bins=."
+                )
+            how = f"{len(edges) - 1} quantile bins"
+        else:
+            edges = np.asarray(rule, dtype=float)
+            lo, hi = rng
+            if lo < edges[0] or hi > edges[-1]:
+                raise ModifierError(
+                    f"Bin edges for {name!r} span {fr._fmt(edges[0])} to {fr._fmt(edges[-1])}, but its "
+                    f"values run from {fr._fmt(lo)} to {fr._fmt(hi)}. Widen the first or last edge."
+                )
+            how = f"{len(edges) - 1} bins at given edges"
+        expr = _bin_index(_as_double(src, name), edges)
+        return name, expr, tuple(float(e) for e in edges), f"Modifier {name!r} cut into {how}."
+    if rule is not None:
+        raise ModifierError(f"bins were given for {name!r}, which is not numeric; remove its entry from bins=.")
+    if n_distinct > spec.max_levels:
+        raise ModifierError(
+            f"Modifier {name!r} has {n_distinct} levels, more than max_levels={spec.max_levels}. "
+            "Group its levels into fewer, or raise max_levels=."
+        )
+    return name, _col(src, name), None, None
+
+
+# -- pass 2: the table of counts ----------------------------------------------------------------
+
+def _mh_keys(src, spec: Spec, ins: Inspection):
+    """Grouping expressions of the confounders for Mantel-Haenszel, and notes of binned ones."""
+    out, notes = [], []
+    for name in spec.confounders:
+        if src.kinds[name] in ("numeric", "float") and ins.distinct[name] > LEVEL_THRESHOLD:
+            # as mantel_haenszel does: quantiles over rows (not weighted), cut points between them
+            q = _quantile_edges(src, spec.replace(counts=None), name, ins.where,
+                                np.linspace(0, 1, CONFOUNDER_BINS + 1))
+            inner = np.unique(q)[1:-1]
+            out.append((name, _searchsorted_right(_as_double(src, name), inner)))
+            notes.append(binning_note(name, ins.distinct[name], inner))
+        else:
+            out.append((name, _col(src, name)))
+    return out, notes
+
+
+def cell_table(src, spec: Spec, ins: Inspection, *, confounders: bool) -> tuple[pd.DataFrame, list]:
+    """The table of counts: one row per observed cell, with the frequency in column :data:`COUNT`.
+
+    Columns: the modifiers (bins as their left edge), the exposure, the outcome (0/1 outcome) or
+    ``__s1``/``__s2`` (sums of the centred outcome and its square), the confounders' levels when
+    ``confounders`` (Mantel-Haenszel), and :data:`COUNT`. Returns ``(table, notes)``.
+    """
+    inner = [(f"k{i}", expr) for i, (_, expr, _, _) in enumerate(ins.keys)]
+    inner.append(("e", _col(src, spec.exposure)))
+    mh, notes = _mh_keys(src, spec, ins) if confounders else ([], [])
+    inner += [(f"c{i}", expr) for i, (_, expr) in enumerate(mh)]
+    groups = [a for a, _ in inner]
+    y = _as_double(src, spec.outcome)
+    if ins.binary:
+        inner.append(("y", _col(src, spec.outcome)))
+        groups.append("y")
+    else:
+        inner.append(("y", fmt("({} - {})", y, value(ins.centre))))
+    inner.append(("w", _as_double(src, spec.counts) if spec.counts else raw("1.0")))
+    aggs = "SUM(w) AS n" + ("" if ins.binary else ", SUM(w * y) AS s1, SUM(w * y * y) AS s2")
+    g = ", ".join(groups)
+    q = fmt("SELECT " + g + ", " + aggs + " FROM (SELECT {} FROM {} WHERE {}) t GROUP BY " + g,
+            _select(inner), src.table, ins.where)
+    got = src.run(q)
+    out = pd.DataFrame()
+    for i, (name, _, edges, _) in enumerate(ins.keys):
+        col = got[f"k{i}"]
+        out[name] = np.asarray(edges)[col.to_numpy(int)] if edges is not None else col.to_numpy()
+    out[spec.exposure] = got["e"].to_numpy()
+    for i, (name, _) in enumerate(mh):
+        out[confounder_alias(i)] = got[f"c{i}"].to_numpy()  # a modifier may be a confounder too
+    if ins.binary:
+        out[spec.outcome] = got["y"].to_numpy()
+    else:
+        out["__s1"] = got["s1"].to_numpy(float)
+        out["__s2"] = got["s2"].to_numpy(float)
+    out[COUNT] = got["n"].to_numpy(float)
+    return out, notes
+
+
+def confounder_alias(i: int) -> str:
+    """Column name of the ``i``-th confounder in the table of counts (never a user column)."""
+    return f"__stratagem_confounder_{i}__"
+
+
+def moment_rows(table: pd.DataFrame, outcome: str, centre: float) -> pd.DataFrame:
+    """Two rows per group of a numeric outcome, frequency ``n / 2`` each at ``mean +- sd``.
+
+    They keep each group's frequency ``n``, mean and sum of squared deviations ``n sd^2`` exactly, so
+    every estimator that uses only those (crude, Mantel-Haenszel) gives the group's numbers.
+    """
+    n = table[COUNT].to_numpy(float)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        mean = np.where(n > 0, table["__s1"].to_numpy(float) / n, 0.0)
+        ss = np.maximum(table["__s2"].to_numpy(float) - n * mean * mean, 0.0)
+        sd = np.where(n > 0, np.sqrt(ss / n), 0.0)
+    base = table.drop(columns=["__s1", "__s2"])
+    lo, hi = base.copy(), base.copy()
+    lo[outcome], hi[outcome] = centre + mean - sd, centre + mean + sd
+    lo[COUNT] = hi[COUNT] = n / 2.0
+    return pd.concat([lo, hi], ignore_index=True)
+
+
+# -- pass 3: model-based estimators -------------------------------------------------------------
+
+@dataclass
+class _Design:
+    exprs: list  # raw design column expressions
+    names: list
+    notes: list
+
+
+def _design(src, spec: Spec, ins: Inspection) -> _Design:
+    """Design columns of the confounders, coded as :func:`stratagem.estimate.design.confounder_design`."""
+    exprs, names, notes = [], [], []
+    for col in spec.confounders:
+        if src.kinds[col] in ("numeric", "float"):
+            lo, hi = ins.ranges[col]
+            if lo == hi:
+                notes.append(f"Confounder {col!r} is constant and was dropped.")
+                continue
+            exprs.append(_as_double(src, col))
+            names.append(str(col))
+            continue
+        found = _distinct(src, col, ins.where)
+        if len(found) > MAX_LEVELS_FETCHED:
+            raise DataError(
+                f"Confounder {col!r} has more than {MAX_LEVELS_FETCHED} levels; group its levels or "
+                "code it as a number before analysing it in an engine."
+            )
+        levels = _levels(pd.Series(found))
+        if len(levels) < 2:
+            notes.append(f"Confounder {col!r} has a single level and was dropped.")
+            continue
+        for level in levels[1:]:
+            exprs.append(fmt("(CASE WHEN {} = {} THEN 1.0 ELSE 0.0 END)", _col(src, col), value(level)))
+            names.append(f"{col}={level}")
+    return _Design(exprs, names, notes)
+
+
+def _per_stratum(values: np.ndarray, s: Frag) -> Frag:
+    """``CASE s WHEN 0 THEN v0 WHEN 1 THEN v1 ... END`` with the values as parameters."""
+    if len(values) == 1:
+        return value(float(values[0]))
+    parts = [fmt("WHEN {} THEN {}", value(i), value(float(v))) for i, v in enumerate(values)]
+    return fmt("(CASE {} END)", fmt("{} ", s) + join(" ", parts))
+
+
+def _dot(beta: np.ndarray, z: list[Frag], s: Frag) -> Frag:
+    """``sum_j beta[s, j] z_j`` for per-stratum coefficients ``beta`` (K, p); zero columns skipped."""
+    terms = []
+    for j, zj in enumerate(z):
+        if not np.any(beta[:, j]):
+            continue
+        terms.append(fmt("{} * {}", _per_stratum(beta[:, j], s), zj))
+    return sql.total(terms)
+
+
+def _grouped(src, inner: list, outer: list, where: Frag, k: int, layers=()) -> pd.DataFrame:
+    """One scan: ``SELECT s, <outer aggregates> FROM (...) GROUP BY s``, one row per stratum (strata
+    without rows get zeros). ``inner`` are the row columns; each of ``layers`` adds columns computed
+    from the previous ones (``SELECT *, ...``), so a quantity used many times is written once."""
+    body = fmt("SELECT {} FROM {} WHERE {}", _select(inner), src.table, where)
+    for i, layer in enumerate(layers):
+        if layer:
+            body = fmt("SELECT *, {} FROM (" + "{}" + f") l{i}", _select(layer), body)
+    q = fmt("SELECT s, {} FROM ({}) t GROUP BY s", _select(outer), body)
+    got = src.run(q)
+    out = pd.DataFrame(0.0, index=range(k), columns=[a for a, _ in outer])
+    for a, _ in outer:
+        out.loc[got["s"].to_numpy(int), a] = got[a].to_numpy(float)
+    return out.fillna(0.0)
+
+
+@dataclass
+class Fitted:
+    beta_ps: np.ndarray
+    beta_om: np.ndarray
+    ok_ps: np.ndarray
+    ok_om: np.ndarray
+    sep_ps: np.ndarray
+    sep_om: np.ndarray
+
+
+def _sym(flat: np.ndarray, p: int) -> np.ndarray:
+    iu = np.triu_indices(p)
+    out = np.zeros((flat.shape[0], p, p))
+    out[:, iu[0], iu[1]] = flat
+    out[:, iu[1], iu[0]] = flat
+    return out
+
+
+def model_means(src, spec: Spec, ins: Inspection, prep, keys_to_stratum: dict, *, name: str,
+                tol: float = 1e-10, max_iter: int = 60) -> GroupMeans:
+    """Standardization, IPW or AIPW per stratum, fitted and averaged in the engine.
+
+    Equal to :mod:`stratagem.estimate._adjust` on the same rows (same models, masks, Newton steps
+    from zero, influence functions), with every sum over rows done by the engine.
+    """
+    need_ps_req = name in ("ipw", "aipw")
+    need_om = name in ("standardization", "aipw")
+    k = prep.n_strata
+    # row expressions
+    key_exprs = [expr for _, expr, _, _ in ins.keys]
+    if key_exprs:
+        branches = []
+        for key, s in keys_to_stratum.items():
+            cond = join(" AND ", [fmt("{} = {}", e, value(v)) for e, v in zip(key_exprs, key)])
+            branches.append(fmt("WHEN {} THEN {}", cond, value(int(s))))
+        s_expr = fmt("(CASE {} END)", join(" ", branches))
+    else:
+        s_expr = raw("0")
+    a_expr = _exposure_expr(src, spec, prep)
+    y_expr = _as_double(src, spec.outcome)
+    w_expr = _as_double(src, spec.counts) if spec.counts else raw("1.0")
+    des = _design(src, spec, ins)
+    p = len(des.exprs)
+    base = [("s", s_expr), ("a", a_expr), ("y", y_expr), ("w", w_expr)]
+    base += [(f"x{j}", e) for j, e in enumerate(des.exprs)]
+    S = raw("s")
+    # moments: means, then centred covariance per stratum
+    outer = [("sw", raw("SUM(w)")), ("swa", raw("SUM(w * a)")), ("swy", raw("SUM(w * y)")),
+             ("npos", raw("SUM(CASE WHEN w > 0 THEN 1 ELSE 0 END)")),
+             ("ylo", raw("MIN(CASE WHEN w > 0 THEN y END)")), ("yhi", raw("MAX(CASE WHEN w > 0 THEN y END)"))]
+    outer += [(f"mx{j}", raw(f"SUM(w * x{j})")) for j in range(p)]
+    m = _grouped(src, base, outer, ins.where, k)
+    N = m["sw"].to_numpy()
+    total_w = N.sum()
+    mean = np.array([m[f"mx{j}"].sum() / total_w for j in range(p)])
+    notes = list(des.notes)
+    cov_s = np.zeros((k, p, p))
+    if p:
+        centred = [fmt("(x" + str(j) + " - {})", value(mean[j])) for j in range(p)]
+        iu = np.triu_indices(p)
+        outer = [(f"c{i}", fmt("SUM(w * {} * {})", centred[a], centred[b])) for i, (a, b) in enumerate(zip(*iu))]
+        outer += [(f"d{j}", fmt("SUM(w * {})", centred[j])) for j in range(p)]
+        c = _grouped(src, base, outer, ins.where, k)
+        sxx = _sym(c[[f"c{i}" for i in range(len(iu[0]))]].to_numpy(), p)
+        sx = c[[f"d{j}" for j in range(p)]].to_numpy()
+        with np.errstate(divide="ignore", invalid="ignore"):
+            cov_s = (sxx - sx[:, :, None] * sx[:, None, :] / np.where(N > 0, N, 1.0)[:, None, None]) \
+                / np.where(N > 0, N, 1.0)[:, None, None]
+        cov_all = (sxx.sum(axis=0) - np.outer(sx.sum(axis=0), sx.sum(axis=0)) / total_w) / total_w
+        keep, reason = independent_from_covariance(cov_all)
+        for j in np.flatnonzero(~keep):
+            if reason[j] == "constant":
+                notes.append(f"Confounder column {des.names[j]!r} is constant and was dropped.")
+            else:
+                notes.append(
+                    f"Confounder column {des.names[j]!r} is an exact linear combination of other confounder "
+                    "columns (collinear) and was dropped; the adjustment is unchanged."
+                )
+        kept = np.flatnonzero(keep)
+        sd = np.sqrt(np.maximum(np.diag(cov_all)[kept], 0.0))
+        zdef = [(f"z{i}", fmt("((x" + str(j) + " - {}) / {})", value(mean[j]), value(s if s > 0 else 1.0)))
+                for i, (j, s) in enumerate(zip(kept, sd))]
+        z = [raw(a) for a, _ in zdef]
+        names = [des.names[j] for j in kept]
+        cov_s = cov_s[:, kept][:, :, kept]
+    else:
+        z, names, zdef = [], [], []
+    q = len(z)
+    Z = [raw("1.0")] + z + [raw("a")]
+    P = q + 2
+    masks = np.ones((k, P), dtype=bool)
+    dropped: dict = {}
+    for s in range(k):
+        if N[s] <= 0 or q == 0:
+            continue
+        keep_s, _ = independent_from_covariance(cov_s[s])
+        masks[s, 1:q + 1] = keep_s
+        for j in np.flatnonzero(~keep_s):
+            dropped.setdefault(names[j], []).append(str(prep.labels["stratum"].iloc[s]))
+    if k > 1:
+        for nm, where in dropped.items():
+            shown = ", ".join(repr(x) for x in where[:4]) + (" ..." if len(where) > 4 else "")
+            notes.append(
+                f"Confounder column {nm!r} is constant or collinear within stratum/strata {shown} "
+                "and was left out of the models there."
+            )
+    # status per stratum, as _adjust._status
+    n1 = m["swa"].to_numpy()
+    status = []
+    for s in range(k):
+        params = P - (0 if need_om else 1)
+        if N[s] <= 0:
+            st = "no rows in this stratum"
+        elif n1[s] <= 0:
+            st = "no exposed rows in this stratum"
+        elif N[s] - n1[s] <= 0:
+            st = "no unexposed rows in this stratum"
+        elif int(m["npos"].iloc[s]) < params:
+            st = f"fewer rows ({int(m['npos'].iloc[s])}) than model parameters ({params})"
+        elif need_om and ins.binary and m["ylo"].iloc[s] == m["yhi"].iloc[s]:
+            st = "outcome is constant in this stratum (all 0 or all 1): the outcome model cannot be fitted"
+        else:
+            st = OK
+        status.append(st)
+    okmask = np.array([st == OK for st in status])
+    base = (base, zdef)
+    fit = _irls(src, base, ins, Z, masks, okmask, binary=ins.binary, need_om=need_om, tol=tol, max_iter=max_iter)
+    for s in range(k):
+        if status[s] != OK:
+            continue
+        if need_ps_req and not fit.ok_ps[s]:
+            status[s] = "propensity model did not converge" + (
+                " (separation: the confounders predict exposure perfectly here, so positivity fails)"
+                if fit.sep_ps[s] else "")
+        elif need_om and not fit.ok_om[s]:
+            status[s] = "outcome model did not converge" + (" (separation)" if fit.sep_om[s] else "")
+    okmask = np.array([st == OK for st in status])
+    m1, m0, v11, v00, v10, diag = _means_and_variances(src, base, ins, Z, masks, fit, okmask, N, n1, name)
+    G = k + 1
+    status.append(OK)
+    if okmask.all():
+        tot = N.sum()
+        m1[k] = np.sum(N * m1[:k]) / tot
+        m0[k] = np.sum(N * m0[:k]) / tot
+        f1, f0, f1f1, f0f0, f1f0 = (diag[key] for key in ("f1", "f0", "f1f1", "f0f0", "f1f0"))
+        d1, d0 = m1[:k] - m1[k], m0[:k] - m0[k]
+        acc11 = np.sum(f1f1 + 2 * d1 * f1 + N * d1 * d1)
+        acc00 = np.sum(f0f0 + 2 * d0 * f0 + N * d0 * d0)
+        acc10 = np.sum(f1f0 + d1 * f0 + d0 * f1 + N * d1 * d0)
+        v11[k], v00[k], v10[k] = acc11 / tot**2, acc00 / tot**2, acc10 / tot**2
+    elif k > 1:
+        status[k] = ("not estimable in the engine: a stratum could not be estimated, and the overall "
+                     "fallback (one model on all rows with stratum indicators) runs only in memory")
+    else:
+        status[k] = "not estimable"
+    n, nn1, nn0 = (np.append(x, x.sum()) for x in (N, n1, N - n1))
+    assert len(n) == G
+    gm = GroupMeans(n, nn1, nn0, m1, m0, v11, v00, v10, status, notes=notes)
+    gm.extra["confounder_columns"] = tuple(names)
+    gm.extra["engine_checks"] = diag["checks"]
+    return gm
+
+
+def _exposure_expr(src, spec: Spec, prep) -> Frag:
+    e = _col(src, spec.exposure)
+    if spec.exposed_level is not None:
+        return fmt("(CASE WHEN {} = {} THEN 1.0 ELSE 0.0 END)", e, value(spec.exposed_level))
+    return _as_double(src, spec.exposure)
+
+
+def _model_aggs(tag: str, S: Frag, r: Frag, Z: list, eta: Frag):
+    P = len(Z)
+    iu = np.triu_indices(P)
+    out = [(f"{tag}h{i}", fmt("SUM({} * {} * {})", S, Z[a], Z[b])) for i, (a, b) in enumerate(zip(*iu))]
+    out += [(f"{tag}g{j}", fmt("SUM({} * {})", r, Z[j])) for j in range(P)]
+    out.append((f"{tag}eta", fmt("MAX(CASE WHEN w > 0 THEN ABS({}) ELSE 0.0 END)", eta)))
+    return out
+
+
+def _irls(src, base, ins, Z, masks, okmask, *, binary, need_om, tol, max_iter) -> Fitted:
+    """Newton/IRLS for the propensity and outcome models of every stratum; one scan per iteration."""
+    k, P = masks.shape
+    ps_mask = masks.copy()
+    ps_mask[:, -1] = False
+    beta = {"ps": np.zeros((k, P)), "om": np.zeros((k, P))}
+    active = {"ps": okmask.copy(), "om": okmask.copy() if need_om else np.zeros(k, dtype=bool)}
+    conv = {"ps": np.zeros(k, dtype=bool), "om": np.zeros(k, dtype=bool)}
+    far = {"ps": np.zeros(k), "om": np.zeros(k)}
+    fam_om = "binomial" if binary else "gaussian"
+    S = raw("s")
+    for _ in range(max_iter):
+        todo = [t for t in ("ps", "om") if active[t].any()]
+        if not todo:
+            break
+        outer, etas, links, weights = [], [], [], []
+        for t in todo:
+            etas.append((f"eta_{t}", _dot(beta[t], Z, S)))
+            eta = raw(f"eta_{t}")
+            target = raw("a") if t == "ps" else raw("y")
+            if t == "om" and fam_om == "gaussian":
+                weights += [(f"S_{t}", raw("w")), (f"r_{t}", fmt("w * (y - {})", eta))]
+            else:
+                mu, rest = _expit(eta)
+                links += [(f"mu_{t}", mu), (f"rest_{t}", rest)]
+                weights += [(f"S_{t}", raw(f"w * mu_{t} * rest_{t}")), (f"r_{t}", fmt("w * ({} - mu_" + t + ")", target))]
+            outer += _model_aggs(t, raw(f"S_{t}"), raw(f"r_{t}"), Z, eta)
+        got = _grouped(src, base[0], outer, ins.where, k, layers=[base[1], etas, links, weights])
+        for t in todo:
+            nq = P * (P + 1) // 2
+            H = _sym(got[[f"{t}h{i}" for i in range(nq)]].to_numpy(), P)
+            g = got[[f"{t}g{j}" for j in range(P)]].to_numpy()
+            far[t] = got[f"{t}eta"].to_numpy()
+            idx = np.flatnonzero(active[t])
+            mask = (ps_mask if t == "ps" else masks)[idx]
+            step = glm._solve(H[idx], g[idx], mask)
+            new = beta[t][idx] + step
+            beta[t][idx] = np.where(np.isfinite(new), new, beta[t][idx])
+            done = np.abs(step).max(axis=1) <= tol * (1.0 + np.abs(new).max(axis=1))
+            if t == "om" and fam_om == "gaussian":
+                done[:] = True  # one weighted least-squares solve is the fit
+            bad = ~np.isfinite(new).all(axis=1)
+            conv[t][idx[done]] = True
+            active[t][idx[done | bad]] = False
+    sep = {t: (~conv[t]) & (far[t] > glm.SEPARATION_ETA) for t in ("ps", "om")}
+    return Fitted(beta["ps"], beta["om"], conv["ps"], conv["om"], sep["ps"], sep["om"])
+
+
+def _means_and_variances(src, base, ins, Z, masks, fit, okmask, N, n1, name):
+    """Two scans: potential-outcome means (with what the influence functions need), then the sums of
+    squares and products of the influence functions per stratum."""
+    k, P = masks.shape
+    S = raw("s")
+    binary = ins.binary
+    ps_mask = masks.copy()
+    ps_mask[:, -1] = False
+    safeN = np.where(N > 0, N, 1.0)
+    p1 = n1 / safeN
+    iu = np.triu_indices(P)
+    nq = len(iu[0])
+    # row quantities, each defined once, layer by layer
+    etas = [("eta_ps", _dot(fit.beta_ps, Z, S))]
+    e_def = list(zip(("e", "ome"), _expit(raw("eta_ps"))))
+    links, derived = [], []
+    if name in ("standardization", "aipw"):
+        ba = _per_stratum(fit.beta_om[:, -1], S)
+        etas.append(("eta_om", _dot(fit.beta_om, Z, S)))
+        e_def += [("eta1", fmt("(eta_om + {} * (1.0 - a))", ba)), ("eta0", fmt("(eta_om - {} * a)", ba))]
+        if binary:
+            for nm, src_eta in (("q1", "eta1"), ("q0", "eta0"), ("mu", "eta_om")):
+                val, rest = _expit(raw(src_eta))
+                links += [(nm, val), (nm + "r", rest)]
+        else:
+            links += [("q1", raw("eta1")), ("q0", raw("eta0")), ("mu", raw("eta_om"))]
+    if name != "standardization":
+        p1s = _per_stratum(p1, S)
+        links.append(("sw", fmt("(CASE WHEN a = 1.0 THEN {} / e ELSE (1.0 - {}) / ome END)", p1s, p1s)))
+    if name == "aipw":  # untruncated: sw / P(A = a | stratum) = 1 / e or 1 / (1 - e)
+        derived += [("psi1", raw("(q1 + a * (y - q1) / e)")), ("psi0", raw("(q0 + (1.0 - a) * (y - q0) / ome)"))]
+    layers = [base[1], etas, e_def, links, derived]
+    outer = [("emin1", raw("MIN(CASE WHEN a = 1.0 AND w > 0 THEN e END)")),
+             ("emax1", raw("MAX(CASE WHEN a = 1.0 AND w > 0 THEN e END)")),
+             ("emin0", raw("MIN(CASE WHEN a = 0.0 AND w > 0 THEN e END)")),
+             ("emax0", raw("MAX(CASE WHEN a = 0.0 AND w > 0 THEN e END)"))]
+    if name != "standardization":
+        outer += [("swmax1", raw("MAX(CASE WHEN a = 1.0 AND w > 0 THEN sw END)")),
+                  ("swmax0", raw("MAX(CASE WHEN a = 0.0 AND w > 0 THEN sw END)")),
+                  ("sws1", raw("SUM(w * a * sw)")), ("sws0", raw("SUM(w * (1.0 - a) * sw)")),
+                  ("swss1", raw("SUM(w * a * sw * sw)")), ("swss0", raw("SUM(w * (1.0 - a) * sw * sw)"))]
+    zt = [z.text for z in Z]  # Z holds column names only ("1.0", "z0", ..., "a")
+    if name == "standardization":
+        d1, d0, v = ("q1 * q1r", "q0 * q0r", "mu * mur") if binary else ("1.0", "1.0", "1.0")
+        outer += [("s1", raw("SUM(w * q1)")), ("s0", raw("SUM(w * q0)"))]
+        outer += [(f"D1_{j}", raw(f"SUM(w * {d1} * {zt[j]})")) for j in range(P)]
+        outer += [(f"D0_{j}", raw(f"SUM(w * {d0} * {zt[j]})")) for j in range(P)]
+        outer += [(f"I{i}", raw(f"SUM(w * {v} * {zt[a]} * {zt[b]})")) for i, (a, b) in enumerate(zip(*iu))]
+    elif name == "ipw":
+        outer += [("c1", raw("SUM(w * a * sw)")), ("c1y", raw("SUM(w * a * sw * y)")),
+                  ("c0", raw("SUM(w * (1.0 - a) * sw)")), ("c0y", raw("SUM(w * (1.0 - a) * sw * y)"))]
+        for j in range(P):
+            outer += [(f"A1_{j}", raw(f"SUM(w * a * sw * ome * {zt[j]})")),
+                      (f"A1y_{j}", raw(f"SUM(w * a * sw * ome * y * {zt[j]})")),
+                      (f"A0_{j}", raw(f"SUM(w * (1.0 - a) * sw * e * {zt[j]})")),
+                      (f"A0y_{j}", raw(f"SUM(w * (1.0 - a) * sw * e * y * {zt[j]})"))]
+        outer += [(f"I{i}", raw(f"SUM(w * e * ome * {zt[a]} * {zt[b]})")) for i, (a, b) in enumerate(zip(*iu))]
+    else:
+        outer += [("s1", raw("SUM(w * psi1)")), ("s0", raw("SUM(w * psi0)"))]
+    got = _grouped(src, base[0], outer, ins.where, k, layers=layers)
+    G = k + 1
+    m1, m0, v11, v00, v10 = (np.full(G, np.nan) for _ in range(5))
+    col = lambda prefix, n_: got[[f"{prefix}{j}" for j in range(n_)]].to_numpy()  # noqa: E731
+
+    def solve(info, D, mask):
+        return np.linalg.lstsq(info[np.ix_(mask, mask)], D[mask], rcond=None)[0]
+
+    # per-stratum constants of the influence functions
+    if name == "standardization":
+        m1[:k], m0[:k] = got["s1"] / safeN, got["s0"] / safeN
+        D1, D0 = col("D1_", P) / safeN[:, None], col("D0_", P) / safeN[:, None]
+        D1[:, -1] = D1[:, 0]  # the exposure is 1 in every prediction of Q(1, L) ...
+        D0[:, -1] = 0.0  # ... and 0 in every prediction of Q(0, L)
+        info = _sym(col("I", nq), P) / safeN[:, None, None]
+        k1, k0 = np.zeros((k, P)), np.zeros((k, P))
+        for s in np.flatnonzero(okmask):
+            k1[s, masks[s]] = solve(info[s], D1[s], masks[s])
+            k0[s, masks[s]] = solve(info[s], D0[s], masks[s])
+        fdef = [("f1", fmt("(q1 - {} + {} * (y - mu))", _per_stratum(np.nan_to_num(m1[:k]), S), _dot(k1, Z, S))),
+                ("f0", fmt("(q0 - {} + {} * (y - mu))", _per_stratum(np.nan_to_num(m0[:k]), S), _dot(k0, Z, S)))]
+    elif name == "ipw":
+        c1, c0 = got["c1"].to_numpy(), got["c0"].to_numpy()
+        with np.errstate(divide="ignore", invalid="ignore"):
+            m1[:k], m0[:k] = got["c1y"] / c1, got["c0y"] / c0
+        m1k, m0k = np.nan_to_num(m1[:k]), np.nan_to_num(m0[:k])
+        G1 = -(col("A1y_", P) - m1k[:, None] * col("A1_", P)) / safeN[:, None]
+        G0 = (col("A0y_", P) - m0k[:, None] * col("A0_", P)) / safeN[:, None]
+        info = _sym(col("I", nq), P) / safeN[:, None, None]
+        k1, k0 = np.zeros((k, P)), np.zeros((k, P))
+        for s in np.flatnonzero(okmask):
+            k1[s, ps_mask[s]] = solve(info[s], G1[s], ps_mask[s])
+            k0[s, ps_mask[s]] = solve(info[s], G0[s], ps_mask[s])
+        cc1, cc0 = np.where(c1 > 0, c1 / safeN, 1.0), np.where(c0 > 0, c0 / safeN, 1.0)
+        fdef = [("f1", fmt("((a * sw * (y - {}) + {} * (a - e)) / {})", _per_stratum(m1k, S), _dot(k1, Z, S),
+                           _per_stratum(cc1, S))),
+                ("f0", fmt("(((1.0 - a) * sw * (y - {}) + {} * (a - e)) / {})", _per_stratum(m0k, S),
+                           _dot(k0, Z, S), _per_stratum(cc0, S)))]
+    else:
+        m1[:k], m0[:k] = got["s1"] / safeN, got["s0"] / safeN
+        fdef = [("f1", fmt("(psi1 - {})", _per_stratum(np.nan_to_num(m1[:k]), S))),
+                ("f0", fmt("(psi0 - {})", _per_stratum(np.nan_to_num(m0[:k]), S)))]
+    outer = [("f1f1", raw("SUM(w * f1 * f1)")), ("f0f0", raw("SUM(w * f0 * f0)")),
+             ("f1f0", raw("SUM(w * f1 * f0)")), ("f1", raw("SUM(w * f1)")), ("f0", raw("SUM(w * f0)"))]
+    var = _grouped(src, base[0], outer, ins.where, k, layers=layers + [fdef])
+    for s in range(k):
+        if not okmask[s]:
+            m1[s] = m0[s] = np.nan
+            continue
+        v11[s], v00[s], v10[s] = (var[c].iloc[s] / N[s] ** 2 for c in ("f1f1", "f0f0", "f1f0"))
+    diag = {c: var[c].to_numpy() for c in ("f1f1", "f0f0", "f1f0", "f1", "f0")}
+    diag["checks"] = got.drop(columns=[c for c in got.columns if not c.startswith(("emin", "emax", "sw"))])
+    return m1, m0, v11, v00, v10, diag
