@@ -521,6 +521,7 @@ function render({ model, el }) {
   // -- views -----------------------------------------------------------------------------------
   function showView(key) {
     view = key;
+    if (stale.has(key)) drawPane(key);
     for (const b of tabs.querySelectorAll("button[data-view]")) {
       const on = b.getAttribute("data-view") === key;
       b.setAttribute("aria-selected", on ? "true" : "false");
@@ -529,9 +530,13 @@ function render({ model, el }) {
     for (const [k, pane] of Object.entries(panes)) pane.hidden = k !== key;
   }
 
+  let drawn = [undefined, undefined]; // the (_result, _transport) values the Effects view shows
   function drawEffects() {
     const result = model.get("_result") || {};
     const transport = model.get("_transport") || {};
+    // One message from Python may change both traits: draw once, not once per change event.
+    if (drawn[0] === model.get("_result") && drawn[1] === model.get("_transport") && drawn[0] !== undefined) return;
+    drawn = [model.get("_result"), model.get("_transport")];
     effects.replaceChildren();
     const rows = result.rows || [];
     if (rows.length === 0) {
@@ -819,12 +824,24 @@ function render({ model, el }) {
   codeBar.append(copy, copied);
   code.append(h("p", { class: "sg-hint" }, "Run this with the same table to get the same numbers."), codeBar, pre);
 
+  // Hidden views are drawn when shown: a new result redraws the visible view at once, so the plot
+  // updates without waiting for tables nobody is looking at (the checks table has rows per check).
+  const stale = new Set();
+  function drawPane(key) {
+    stale.delete(key);
+    const result = model.get("_result") || {};
+    if (key === "types") drawTypes(result);
+    else if (key === "checks") drawChecks(result);
+  }
+
   function drawResult() {
     const result = model.get("_result") || {};
     title.textContent = result.title ? `${result.title} — ${result.measure_name}, ${result.method}` : "stratagem Explorer";
     drawEffects();
-    drawTypes(result);
-    drawChecks(result);
+    for (const key of ["types", "checks"]) {
+      if (key === view) drawPane(key);
+      else stale.add(key);
+    }
     drawCode();
     copied.textContent = "";
     notes.replaceChildren();

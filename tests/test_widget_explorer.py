@@ -467,3 +467,61 @@ def test_snapshot_shows_the_transported_effect(demo):
     rows = ex._result["rows"]
     x = axis(rows + [target_row(ex._transport)], False, 0.0, LABEL_W + PAD, LABEL_W + PLOT_W - PAD)["x"]
     assert f'M{x(estimate):.2f} ' in html
+
+
+# -- reuse of results for revisited choices ---------------------------------------------------------
+
+def counting(monkeypatch):
+    calls = []
+    real = explorer_module.analyze
+
+    def wrapped(data, spec, progress=None):
+        calls.append(tuple(spec.strata))
+        return real(data, spec, progress=progress)
+
+    monkeypatch.setattr(explorer_module, "analyze", wrapped)
+    return calls
+
+
+def test_revisited_choice_reuses_its_result(demo, monkeypatch):
+    calls = counting(monkeypatch)
+    ex = make(demo, confounders=("age", "deprivation"), method="aipw", sync=True,
+              target=target_frame(demo))
+    ex.strata = ["sex"]
+    first = ex._result
+    ex.strata = ["insulin"]
+    ex.measure = "rr"
+    ex.measure = "rd"  # back to the ["insulin"], rd choice: reused
+    ex.strata = ["sex"]  # reused
+    assert calls == [(), ("sex",), ("insulin",), ("insulin",)]
+    assert ex._result == first == reference(demo, ex)
+    rows, _ = expected_transport(demo, ex, target_frame(demo))
+    assert ex._transport["rows"] == rows
+
+
+def test_table_changed_in_place_is_analysed_again(demo, monkeypatch):
+    calls = counting(monkeypatch)
+    df = demo.copy()
+    ex = make(df, sync=True)
+    ex.strata = ["sex"]
+    ex.strata = ["insulin"]
+    df.loc[df.index[:400], "on_target"] = 1 - df.loc[df.index[:400], "on_target"]  # the user edits it
+    ex.strata = ["sex"]
+    assert calls == [(), ("sex",), ("insulin",), ("sex",)], "a changed table must be analysed again"
+    assert ex._result == reference(df, ex)
+    assert ex._result != reference(demo, ex)
+    # a reordering of the rows changes the digest too (bootstrap draws rows by position)
+    spec = ex.spec
+    shuffled = df.iloc[::-1].reset_index(drop=True)
+    assert explorer_module._fingerprint(df, spec) != explorer_module._fingerprint(shuffled, spec)
+    assert explorer_module._fingerprint(df, spec) == explorer_module._fingerprint(df.copy(), spec)
+
+
+def test_large_tables_keep_no_extra_results(demo, monkeypatch):
+    monkeypatch.setattr(explorer_module, "_CACHE_CELLS", len(demo))  # room for one result only
+    calls = counting(monkeypatch)
+    ex = make(demo, sync=True)
+    ex.strata = ["sex"]
+    ex.strata = []
+    assert calls == [(), ("sex",), ()]
+    assert len(ex._cache) == 0

@@ -250,6 +250,13 @@ test("escaping: a hostile column name and level appear as text, no element is cr
   // querying by the attribute value finds the row: the label was stored verbatim
   const tr = [...root.querySelectorAll(".sg-effects tbody tr")].find((t) => t.getAttribute("data-stratum") === label);
   assert.ok(tr);
+  // hidden views are drawn when shown: show them, then look again
+  root.querySelector('[data-view="types"]').click();
+  assert.equal(root.querySelector(".sg-types tbody td").textContent, label);
+  root.querySelector('[data-view="checks"]').click();
+  assert.ok(root.querySelector(".sg-checks").textContent.includes(HOSTILE));
+  assert.equal(root.querySelectorAll("img").length, 0);
+  assert.equal(root.querySelectorAll("b").length, 0);
   model.put("_result", result([row(HOSTILE)], { recipe: HOSTILE }));
   assert.equal(root.querySelector("pre.sg-code").textContent, HOSTILE);
   assert.equal(root.querySelectorAll("img").length, 0);
@@ -490,4 +497,38 @@ test("escaping: a hostile target name, message and note appear as text", () => {
   model.put("_transport", moved({ state: "error", message: HOSTILE, name: "<b>x</b>" }));
   assert.equal(root.querySelectorAll("img").length + root.querySelectorAll("b").length, 0);
   assert.equal(root.querySelector("td.sg-transport-message").textContent, HOSTILE);
+});
+
+test("a new result redraws the visible view now and hidden views when they are shown", () => {
+  const diag = (warning) => [{ stratum: "overall", check: "n", arm: "exposed", value: 5, warning }];
+  const { model, root } = mount({ _result: result([row("overall")], { diagnostics: diag("first") }) });
+  root.querySelector('[data-view="checks"]').click();
+  assert.match(root.querySelector(".sg-checks").textContent, /first/);
+  root.querySelector('[data-view="effects"]').click();
+  model.put("_result", result([row("a"), row("overall")], { modifiers: ["g"], diagnostics: diag("second") }));
+  assert.equal(root.querySelectorAll(".sg-effects tbody tr").length, 2, "the visible view is current");
+  assert.match(root.querySelector(".sg-checks").textContent, /first/, "the hidden view waits");
+  root.querySelector('[data-view="checks"]').click();
+  assert.match(root.querySelector(".sg-checks").textContent, /second/);
+  // while the checks view is shown, a new result redraws it at once
+  model.put("_result", result([row("overall")], { diagnostics: diag("third") }));
+  assert.match(root.querySelector(".sg-checks").textContent, /third/);
+});
+
+test("one message changing _result and _transport draws the Effects view once", () => {
+  const { model, root } = mount({ _result: result([row("a"), row("overall")], { modifiers: ["g"] }) });
+  let draws = 0;
+  const effects = root.querySelector(".sg-effects");
+  const real = effects.replaceChildren.bind(effects);
+  effects.replaceChildren = (...nodes) => {
+    draws += 1;
+    return real(...nodes);
+  };
+  // like Backbone's set of a state message: both values first, then one change event per trait
+  model.values._result = result([row("b"), row("overall")], { modifiers: ["g"] });
+  model.values._transport = moved();
+  model.fire("_result");
+  model.fire("_transport");
+  assert.equal(draws, 1);
+  assert.ok(root.querySelector('tr[data-stratum="b"]') && root.querySelector("tr.sg-target"));
 });

@@ -20,9 +20,11 @@ Nothing shown is computed anywhere but in ``analyze`` and ``transport``.
 
 from __future__ import annotations
 
+import hashlib
 import pathlib
 import threading
 import time
+from collections import OrderedDict
 from collections.abc import Mapping, Sequence
 from typing import Any
 
@@ -82,8 +84,29 @@ def front_end_file(name: str) -> pathlib.Path:
 _FIXED = ("confounders", "seed", "potential_outcomes", "counts", "exposed_level", "missing",
           "max_levels", "correction", "truncate", "monotone")
 
+_CACHE_CELLS = 2_000_000  # results kept for revisited choices: at most this many rows x entries ...
+_CACHE_MAX = 12  # ... and at most this many entries
 _PROGRESS_STEP = 0.02  # publish bootstrap progress in steps of 2% at most
 _PROGRESS_INTERVAL = 0.1  # ... and at most every 0.1 s
+
+
+def _fingerprint(data: pd.DataFrame, spec: Spec) -> bytes | None:
+    """A digest of the columns ``spec`` reads (values, order, dtypes), or None if unhashable.
+
+    Results are reused only when the table's columns still hash the same, so a table changed in
+    place is analysed again. Row order counts (the bootstrap draws rows by position).
+    """
+    names = [spec.exposure, spec.outcome, *spec.confounders, *spec.strata, spec.counts,
+             *(spec.potential_outcomes or ())]
+    cols = [c for c in dict.fromkeys(names) if c is not None and c in data.columns]
+    try:
+        part = data[cols]
+        rows = pd.util.hash_pandas_object(part, index=False).to_numpy()
+    except Exception:  # e.g. unhashable objects in a column: no reuse, always recompute
+        return None
+    digest = hashlib.blake2b(rows.tobytes(), digest_size=16)
+    digest.update(repr((len(data), cols, [str(t) for t in part.dtypes])).encode())
+    return digest.digest()
 
 
 def _friendly(exc: BaseException) -> str:
@@ -220,6 +243,9 @@ class Explorer(anywidget.AnyWidget):
         self._last_progress = (0.0, 0.0)
         self._target = _check_target(target, target_name)
         self._transported = None
+        self._cache: OrderedDict = OrderedDict()  # (spec JSON, data digest) -> [analysis, payload, target, moved]
+        self._cache_lock = threading.Lock()
+        self._cache_size = min(_CACHE_MAX, _CACHE_CELLS // max(len(data), 1))
         super().__init__(
             strata=list(strata), bins=dict(bins or {}), method=method, measure=measure,
             level=float(level), interval=interval, n_boot=int(n_boot),
@@ -377,12 +403,40 @@ class Explorer(anywidget.AnyWidget):
                 self._last_progress = (fraction, now)
                 self._post(lambda: self._progress(check, fraction))
 
-        analysis = analyze(self._data, spec, progress=progress)
-        check()
-        payload = analysis_payload(analysis, self._data_name)
+        key = (spec.to_json(), _fingerprint(self._data, spec)) if self._cache_size >= 2 else None
+        entry = self._recall(key)
+        if entry is None:
+            analysis = analyze(self._data, spec, progress=progress)
+            check()
+            entry = [analysis, analysis_payload(analysis, self._data_name), None, None]
+            self._remember(key, entry)
+            if key is not None and analysis.spec != spec:  # also under the resolved choice
+                self._remember((analysis.spec.to_json(), key[1]), entry)
+        analysis, payload = entry[0], entry[1]
         target = self._target
-        moved = run_transport(analysis, target)
+        if entry[2] is not target or entry[3] is None:
+            entry[2], entry[3] = target, run_transport(analysis, target)
+        moved = entry[3]
         return analysis, payload, moved, target, snapshot_html(payload, moved[1])
+
+    # -- results of revisited choices ----------------------------------------------------------------
+    def _recall(self, key) -> list | None:
+        """The cached [analysis, payload, target, transport] for ``key``, or None."""
+        if key is None or key[1] is None:
+            return None
+        with self._cache_lock:
+            entry = self._cache.get(key)
+            if entry is not None:
+                self._cache.move_to_end(key)
+            return entry
+
+    def _remember(self, key, entry: list) -> None:
+        if key is None or key[1] is None:
+            return
+        with self._cache_lock:
+            self._cache[key] = entry
+            while len(self._cache) > self._cache_size:
+                self._cache.popitem(last=False)
 
     def _post(self, fn) -> None:
         post = kernel_post()
