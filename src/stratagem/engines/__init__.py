@@ -179,8 +179,10 @@ def _engine_diagnostics(result: Analysis, src, ins) -> pd.DataFrame:
         from ..diagnostics import ESS_SHARE, PROPENSITY_LIMITS
 
         arms = (("exposed", "1"), ("unexposed", "0"))
-        for s, label in enumerate(names):
-            row = checks.iloc[s]
+        whole = {c: (checks[c].min() if c.startswith("emin") else checks[c].max() if "max" in c
+                     else checks[c].sum()) for c in checks.columns}
+        for s, label in enumerate(names + ["overall"]):
+            row = checks.iloc[s] if s < len(names) else pd.Series(whole)
             for arm, j in arms:
                 lo, hi = float(row[f"emin{j}"]), float(row[f"emax{j}"])
                 extra_rows.append((label, "propensity min", arm, lo,
