@@ -130,19 +130,27 @@ def _terms(confounders: pd.DataFrame):
                 yield "levels", str(name), codes.astype(np.int64), list(levels)
 
 
-def _smd_groups(groups: _Groups, x: np.ndarray, w: np.ndarray, binary: bool, n_rows: np.ndarray):
-    """SMD per group (G,) of term ``x`` with row weights ``w``; ``n_rows`` (G, 2) rows per arm."""
-    centre = np.average(x, weights=w) if w.sum() > 0 else 0.0
+def _smd_groups(groups: _Groups, x: np.ndarray, w: np.ndarray, binary: bool, n_rows: np.ndarray,
+                sw: np.ndarray | None = None, w_total: float | None = None):
+    """SMD per group (G,) of term ``x`` with row weights ``w``; ``n_rows`` (G, 2) rows per arm.
+
+    ``sw`` (the per-group sums of ``w``) and ``w_total`` (``w.sum()``) may be passed when shared by
+    several terms; the result is the same to the last bit.
+    """
+    w_total = w.sum() if w_total is None else w_total
+    centre = np.average(x, weights=w) if w_total > 0 else 0.0
     xc = x - centre  # centring limits rounding in the one-pass variance
-    sw = groups.sums(w)
-    sx = groups.sums(w * xc)
+    sw = groups.sums(w) if sw is None else sw
+    wx = w * xc
+    sx = groups.sums(wx)
     with np.errstate(divide="ignore", invalid="ignore"):
         m = sx / sw
         if binary:
             p = m + centre
             var = p * (1 - p)
         else:
-            ss = groups.sums(w * xc * xc) - sx * m
+            wx *= xc  # w * xc * xc, evaluated in the same order as before
+            ss = groups.sums(wx) - sx * m
             var = np.maximum(ss, 0.0) / sw * n_rows / (n_rows - 1)
         d = (m[:, 1] - m[:, 0]) / np.sqrt((var[:, 1] + var[:, 0]) / 2)
     return np.where(np.isfinite(d), d, np.nan)
@@ -212,15 +220,20 @@ def diagnostics_table(prep: Prepared, gm: GroupMeans) -> pd.DataFrame:
                          f"effective sample size under {ESS_SHARE:.0%} of the {ARMS[j]} arm's rows: "
                          "a few rows carry most of the weight", ""))
 
+    # weights shared by every term: rows' frequencies, and frequencies x IP weights
+    fv = f * v if ipw is not None else None
+    shared_f = (n_rows, f.sum())  # groups.sums(f) is n_rows
+    shared_fv = (groups.sums(fv), fv.sum()) if fv is not None else None
     for kind, name, x, info in _terms(prep.confounders):
         if kind == "numeric":
             labels = [name]
-            before = _smd_groups(groups, x, f, info, n_rows)[:, None]
-            after = _smd_groups(groups, x, f * v, info, n_rows)[:, None] if ipw is not None else None
+            before = _smd_groups(groups, x, f, info, n_rows, *shared_f)[:, None]
+            after = (_smd_groups(groups, x, fv, info, n_rows, *shared_fv)[:, None]
+                     if fv is not None else None)
         else:
             labels = [f"{name}={level}" for level in info]
             before = _smd_levels(groups, x, len(info), f)
-            after = _smd_levels(groups, x, len(info), f * v) if ipw is not None else None
+            after = _smd_levels(groups, x, len(info), fv) if fv is not None else None
         for j, label in enumerate(labels):
             add(f"smd before: {label}", BOTH, before[:, j], "")
             if after is not None:
