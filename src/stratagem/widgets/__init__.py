@@ -3,5 +3,6 @@
 from __future__ import annotations
 
 from .explorer import Explorer
+from .simulation_lab import SimulationLab
 
-__all__ = ["Explorer"]
+__all__ = ["Explorer", "SimulationLab"]
