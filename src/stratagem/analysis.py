@@ -82,6 +82,11 @@ def analyze(
     ['no', 'yes']
     """
     spec = Spec.from_fields(spec, **fields)
+    if not isinstance(data, pd.DataFrame):  # a DuckDB relation, Parquet path or Spark DataFrame
+        from .engines import analyze_engine, is_engine_input
+
+        if is_engine_input(data):
+            return analyze_engine(data, spec, progress)
     prep, spec = prepare(data, spec)
     estimator = get_estimator(spec.method)
     gm = estimator(prep, spec)
