@@ -23,8 +23,8 @@ import sys
 import time
 import urllib.error
 import urllib.request
+from collections.abc import Sequence
 from pathlib import Path
-from typing import Sequence
 
 __all__ = ["main", "quickstart_source", "copy_quickstart", "read_table", "parse_bins"]
 
