@@ -249,6 +249,47 @@ export function shiftColumn(strata, column, by) {
 }
 
 // ---------------------------------------------------------------------------------------------
+// Keyboard focus across a re-created view
+//
+// Each new result refreshes the output's static snapshot, and JupyterLab then re-creates the view
+// from the model. The open view is a trait (`view`); the focused control is remembered here, per
+// model, and given back to the same control of the new view when focus was lost with the old one.
+// The key is the model's `_variables` list: the same object for as long as the model lives (the
+// model handed to render is a fresh wrapper per view, so it cannot be the key).
+
+const FOCUS_MS = 60000; // a remembered focus older than this is not restored
+const focusMemory = new WeakMap();
+
+/** Where `node` sits in the view, as plain data (chips by their column, controls by name). */
+export function focusPlace(node) {
+  if (!(node instanceof Element)) return null;
+  const chipNode = node.closest(".sg-chip[data-column]");
+  if (chipNode) {
+    const part = ["sg-add", "sg-remove", "sg-bins"].find((c) => node.classList.contains(c)) || "chip";
+    return { area: chipNode.closest(".sg-zone") ? "zone" : "variables", column: chipNode.getAttribute("data-column"), part };
+  }
+  for (const attr of ["data-control", "data-view"]) {
+    if (node.hasAttribute(attr)) return { attr, value: node.getAttribute(attr) };
+  }
+  if (node.classList.contains("sg-copy")) return { attr: "class", value: "sg-copy" };
+  return null;
+}
+
+/** The element of `root` at `place` (see focusPlace), or a near one, or null. */
+export function findPlace(root, place) {
+  if (!place) return null;
+  if (place.column !== undefined) {
+    const area = root.querySelector(place.area === "zone" ? ".sg-zone" : ".sg-variables");
+    const chips = area ? [...area.querySelectorAll(".sg-chip[data-column]")] : [];
+    const found = chips.find((c) => c.getAttribute("data-column") === place.column);
+    if (!found) return place.area === "zone" ? root.querySelector(".sg-zone .sg-chip") || root.querySelector(".sg-zone") : null;
+    return place.part === "chip" ? found : found.querySelector(`.${place.part}`) || found;
+  }
+  if (place.attr === "class") return root.querySelector(`.${place.value}`);
+  return [...root.querySelectorAll(`[${place.attr}]`)].find((n) => n.getAttribute(place.attr) === place.value) || null;
+}
+
+// ---------------------------------------------------------------------------------------------
 // The view
 
 /** @param {{ model: Model, el: HTMLElement }} ctx */
@@ -259,7 +300,7 @@ function render({ model, el }) {
     model.on(event, cb);
     listeners.push([event, cb]);
   };
-  let view = "effects";
+  let view = VIEWS.some(([k]) => k === model.get("view")) ? model.get("view") : "effects";
   let dragging = null; // column being dragged from this view (fallback when dataTransfer is empty)
 
   const root = h("div", { class: "sg-explorer" });
@@ -307,7 +348,10 @@ function render({ model, el }) {
   const panes = {};
   for (const [key, label] of VIEWS) {
     const b = h("button", { type: "button", role: "tab", "data-view": key }, label);
-    b.addEventListener("click", () => showView(key));
+    b.addEventListener("click", () => {
+      showView(key);
+      if (model.get("view") !== key) write("view", key); // kept in a trait: survives a new view
+    });
     tabs.append(b);
   }
   const effects = h("section", { class: "sg-effects sg-pane", "data-pane": "effects" });
@@ -881,6 +925,43 @@ function render({ model, el }) {
   listen("change:_result", drawResult);
   listen("change:_status", drawStatus);
   listen("change:_transport", onTransport);
+  const onView = () => {
+    const key = model.get("view");
+    if (key !== view && VIEWS.some(([k]) => k === key)) showView(key);
+  };
+  listen("change:view", onView);
+
+  // -- focus across re-created views ---------------------------------------------------------------
+  const memoryKey = model.get("_variables");
+  const remember = (e) => {
+    const place = focusPlace(e.target);
+    if (place && memoryKey && typeof memoryKey === "object") focusMemory.set(memoryKey, { place, at: Date.now() });
+  };
+  const forget = (e) => {
+    // Focus moved elsewhere on purpose (not lost with a removed view, where relatedTarget is null).
+    if (e.relatedTarget && !root.contains(e.relatedTarget) && memoryKey && typeof memoryKey === "object") {
+      focusMemory.delete(memoryKey);
+    }
+  };
+  root.addEventListener("focusin", remember);
+  root.addEventListener("focusout", forget);
+  let frames = 0;
+  let restoreTimer = null;
+  const restore = () => {
+    restoreTimer = null;
+    if (!root.isConnected) {
+      if (++frames < 20) restoreTimer = setTimeout(restore, 16);
+      return;
+    }
+    const saved = memoryKey && typeof memoryKey === "object" ? focusMemory.get(memoryKey) : null;
+    if (!saved || Date.now() - saved.at > FOCUS_MS) return;
+    const active = document.activeElement;
+    const lost = !active || active === document.body || (active.contains(root) && active !== root);
+    if (!lost) return; // the user is somewhere else: leave focus alone
+    const target = findPlace(root, saved.place);
+    if (target && typeof target.focus === "function") target.focus();
+  };
+  restoreTimer = setTimeout(restore, 0);
   const onControl = () => drawControls();
   for (const name of ["method", "measure", "level", "interval", "n_boot"]) listen(`change:${name}`, onControl);
 
@@ -897,6 +978,9 @@ function render({ model, el }) {
     zone.removeEventListener("dragenter", onDragOver);
     zone.removeEventListener("dragleave", onDragLeave);
     zone.removeEventListener("drop", onDrop);
+    root.removeEventListener("focusin", remember);
+    root.removeEventListener("focusout", forget);
+    if (restoreTimer !== null) clearTimeout(restoreTimer);
   };
 }
 

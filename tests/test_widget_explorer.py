@@ -525,3 +525,16 @@ def test_large_tables_keep_no_extra_results(demo, monkeypatch):
     ex.strata = []
     assert calls == [(), ("sex",), ()]
     assert len(ex._cache) == 0
+
+
+def test_open_view_is_a_trait_that_does_not_recompute(demo, monkeypatch):
+    import traitlets
+
+    ex = make(demo, strata=("sex",), sync=True)
+    calls = counting(monkeypatch)
+    assert ex.view == "effects" and "view" in ex.keys and ex.trait_metadata("view", "sync")
+    ex.view = "checks"  # as the front end writes it after a tab click
+    assert calls == [] and ex._status["state"] == "idle"
+    assert ex.get_state()["view"] == "checks"
+    with pytest.raises(traitlets.TraitError):
+        ex.view = "plot"

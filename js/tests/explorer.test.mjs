@@ -532,3 +532,78 @@ test("one message changing _result and _transport draws the Effects view once", 
   assert.equal(draws, 1);
   assert.ok(root.querySelector('tr[data-stratum="b"]') && root.querySelector("tr.sg-target"));
 });
+
+// -- the open view and keyboard focus survive a re-created view --------------------------------
+
+test("the open view is a trait: clicks write it, a new view opens it, Python can set it", () => {
+  const { model, root, cleanup } = mount();
+  root.querySelector('[data-view="checks"]').click();
+  assert.equal(model.get("view"), "checks");
+  assert.ok(model.log.saves >= 1);
+  cleanup();
+  // JupyterLab re-creates the view after a snapshot refresh: the new one opens on "checks"
+  const el2 = document.createElement("div");
+  document.body.append(el2);
+  widget.render({ model, el: el2 });
+  const root2 = el2.querySelector(".sg-explorer");
+  assert.equal(root2.querySelector(".sg-pane:not([hidden])").getAttribute("data-pane"), "checks");
+  assert.equal(root2.querySelector('[data-view="checks"]').getAttribute("aria-selected"), "true");
+  model.put("view", "code");
+  assert.equal(root2.querySelector(".sg-pane:not([hidden])").getAttribute("data-pane"), "code");
+  model.put("view", "not-a-view");
+  assert.equal(root2.querySelector(".sg-pane:not([hidden])").getAttribute("data-pane"), "code");
+});
+
+test("focusPlace and findPlace name chips by column (hostile names too) and controls by name", async () => {
+  const { focusPlace, findPlace } = await import("../explorer.js");
+  const variables = [{ name: HOSTILE, tag: "2 levels", ok: true, reason: "", kind: "levels" },
+    { name: 'a"b', tag: "2 levels", ok: true, reason: "", kind: "levels" }];
+  const { root } = mount({ _variables: variables, strata: ['a"b'] });
+  const chip = root.querySelector(".sg-variables .sg-chip");
+  assert.deepEqual(focusPlace(chip), { area: "variables", column: HOSTILE, part: "chip" });
+  assert.equal(findPlace(root, focusPlace(chip)), chip);
+  const remove = root.querySelector(".sg-zone .sg-chip .sg-remove");
+  assert.deepEqual(focusPlace(remove), { area: "zone", column: 'a"b', part: "sg-remove" });
+  assert.equal(findPlace(root, focusPlace(remove)), remove);
+  const level = root.querySelector('[data-control="level"]');
+  assert.equal(findPlace(root, focusPlace(level)), level);
+  // a removed zone chip falls back to the zone's first chip, or the zone
+  assert.equal(findPlace(root, { area: "zone", column: "gone", part: "sg-remove" }), root.querySelector(".sg-zone .sg-chip"));
+  assert.equal(focusPlace(root), null);
+});
+
+test("keyboard focus goes back to the same chip when the view is re-created", async () => {
+  const { model, root, cleanup } = mount();
+  const sex = root.querySelector('.sg-variables .sg-chip[data-column="sex"]');
+  sex.focus();
+  assert.equal(document.activeElement, sex);
+  sex.dispatchEvent(new KeyboardEvent("keydown", { key: "Enter", bubbles: true }));
+  // the output is replaced: old view cleaned up and removed (focus falls to the body) ...
+  cleanup();
+  el.remove();
+  assert.equal(document.activeElement, document.body);
+  // ... and a new view of the same model is rendered and attached
+  const el2 = document.createElement("div");
+  document.body.append(el2);
+  widget.render({ model, el: el2 });
+  await new Promise((r) => setTimeout(r, 30));
+  const again = el2.querySelector('.sg-variables .sg-chip[data-column="sex"]');
+  assert.equal(document.activeElement, again);
+});
+
+test("focus is left alone when the user moved it elsewhere", async () => {
+  const { model, root, cleanup } = mount();
+  const outside = document.createElement("input");
+  document.body.append(outside);
+  root.querySelector('.sg-variables .sg-chip[data-column="sex"]').focus();
+  outside.focus(); // focusout with a relatedTarget outside the widget: on purpose
+  cleanup();
+  el.remove();
+  const el2 = document.createElement("div");
+  document.body.append(el2);
+  const cleanup2 = widget.render({ model, el: el2 });
+  await new Promise((r) => setTimeout(r, 30));
+  assert.equal(document.activeElement, outside);
+  cleanup2();
+  outside.remove();
+});

@@ -3,7 +3,7 @@
 Traits, in three kinds (see DESIGN.md and the widget contract):
 
 * public inputs the front end writes: ``strata``, ``bins``, ``method``, ``measure``, ``level``,
-  ``interval``, ``n_boot``;
+  ``interval``, ``n_boot``; and ``view``, the open view (no recompute);
 * derived state Python writes (leading underscore): ``_variables``, ``_result``, ``_status``,
   ``_transport`` (the effect in a target population, when one is picked);
 * Python-only: :attr:`Explorer.analysis`, :attr:`Explorer.spec`, :attr:`Explorer.target` and
@@ -179,6 +179,10 @@ class Explorer(anywidget.AnyWidget):
     level = traitlets.Float(0.95).tag(sync=True)
     interval = traitlets.Unicode("wald").tag(sync=True)
     n_boot = traitlets.Int(1000).tag(sync=True)
+
+    # The open view (written by the front end; Python may set it): kept in a trait so a view that
+    # JupyterLab re-creates after a snapshot refresh opens where the user was. Not an analysis input.
+    view = traitlets.Enum(("effects", "types", "checks", "code"), default_value="effects").tag(sync=True)
 
     _variables = traitlets.List(default_value=[]).tag(sync=True)
     _result = traitlets.Dict(default_value={}).tag(sync=True)
