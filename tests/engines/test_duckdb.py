@@ -15,11 +15,16 @@ duckdb = pytest.importorskip("duckdb")
 import stratagem as sg  # noqa: E402
 from stratagem.engines import analyze_engine, sql  # noqa: E402
 from stratagem.errors import (  # noqa: E402
-    ColumnNotFoundError, DataError, ExposureError, MeasureError, MissingValuesError, ModifierError,
-    OutcomeError, SpecError,
+    ColumnNotFoundError,
+    DataError,
+    ExposureError,
+    MeasureError,
+    MissingValuesError,
+    ModifierError,
+    OutcomeError,
+    SpecError,
 )
 from stratagem.spec import Spec  # noqa: E402
-
 
 NUMBERS = ["n", "n_exposed", "n_unexposed", "mean_exposed", "mean_unexposed", "estimate", "se",
            "ci_low", "ci_high", "p_value"]

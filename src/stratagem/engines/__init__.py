@@ -21,8 +21,9 @@ stream, so engine and in-memory bootstrap intervals agree within Monte Carlo err
 
 from __future__ import annotations
 
+from collections.abc import Callable
 from dataclasses import replace
-from typing import Any, Callable
+from typing import Any
 
 import numpy as np
 import pandas as pd

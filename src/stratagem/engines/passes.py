@@ -329,7 +329,7 @@ def cell_table(src, spec: Spec, ins: Inspection, *, confounders: bool) -> tuple[
         col = got[f"k{i}"]
         out[name] = np.asarray(edges)[col.to_numpy(int)] if edges is not None else col.to_numpy()
     out[spec.exposure] = got["e"].to_numpy()
-    for i, (name, _) in enumerate(mh):
+    for i in range(len(mh)):
         out[confounder_alias(i)] = got[f"c{i}"].to_numpy()  # a modifier may be a confounder too
     if ins.binary:
         out[spec.outcome] = got["y"].to_numpy()
@@ -479,7 +479,6 @@ def model_means(src, spec: Spec, ins: Inspection, prep, keys_to_stratum: dict, *
     p = len(des.exprs)
     base = [("s", s_expr), ("a", a_expr), ("y", y_expr), ("w", w_expr)]
     base += [(f"x{j}", e) for j, e in enumerate(des.exprs)]
-    S = raw("s")
     # moments: means, then centred covariance per stratum
     outer = [("sw", raw("SUM(w)")), ("swa", raw("SUM(w * a)")), ("swy", raw("SUM(w * y)")),
              ("npos", raw("SUM(CASE WHEN w > 0 THEN 1 ELSE 0 END)")),

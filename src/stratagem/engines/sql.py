@@ -10,8 +10,9 @@ Spark >= 3.5) bind positional ``?`` parameters, so one builder serves both engin
 
 from __future__ import annotations
 
+from collections.abc import Iterable
 from dataclasses import dataclass
-from typing import Any, Iterable
+from typing import Any
 
 __all__ = ["Dialect", "Frag", "value", "raw", "join", "fmt", "total", "DUCKDB", "SPARK"]
 
@@ -23,7 +24,7 @@ class Frag:
     text: str
     params: tuple = ()
 
-    def __add__(self, other: "Frag") -> "Frag":
+    def __add__(self, other: Frag) -> Frag:
         return Frag(self.text + other.text, self.params + other.params)
 
 
