@@ -13,7 +13,7 @@
 const SVG = "http://www.w3.org/2000/svg";
 export const TYPES = ["doomed", "causal", "preventive", "immune"];
 const EDITABLE = ["doomed", "causal", "preventive"]; // immune is the rest
-const PLOT_W = 240;
+const PLOT_W = 300;
 const ROW_H = 30; // one table row per stratum; the plot draws three marks in it
 const AXIS_H = 30;
 const PAD = 10;
@@ -102,6 +102,30 @@ export function newLevel(groups) {
   return { level: `level ${k}`, weight: tidy(weight), doomed: last.doomed, causal: last.causal, preventive: last.preventive, immune: last.immune };
 }
 
+/**
+ * Commit an input's edit on Enter as well as on "change" (blur), without committing twice.
+ * @param {HTMLInputElement} input
+ * @param {() => void} commit
+ */
+function onCommit(input, commit) {
+  let committed = null;
+  const run = () => {
+    if (committed === input.value) return;
+    committed = input.value;
+    commit();
+  };
+  input.addEventListener("change", run);
+  input.addEventListener("keydown", (event) => {
+    if (event.key === "Enter") {
+      event.preventDefault();
+      run();
+    }
+  });
+  input.addEventListener("focus", () => {
+    committed = null;
+  });
+}
+
 /** Pixel position of `v` on the plot's linear axis. */
 export function xScale(domain, left, right) {
   const [d0, d1] = domain;
@@ -140,7 +164,13 @@ function render({ model, el }) {
   const addBtn = h("button", { type: "button", class: "sg-lab-add" }, "Add a level");
   const settings = h("div", { class: "sg-lab-settings" });
   const settingsError = h("p", { class: "sg-lab-inline-error", role: "alert" });
-  setupPane.append(setupHint, groupsTable, groupsError, addBtn, settings, settingsError);
+  const levelsPart = h("div", { class: "sg-lab-levels" });
+  levelsPart.append(groupsTable, groupsError, addBtn);
+  const settingsPart = h("div", { class: "sg-lab-settings-part" });
+  settingsPart.append(settings, settingsError);
+  const setupParts = h("div", { class: "sg-lab-setup-parts" });
+  setupParts.append(levelsPart, settingsPart);
+  setupPane.append(setupHint, setupParts);
 
   const setting = (label, node, after) => {
     const wrap = h("label", { class: "sg-lab-setting" });
@@ -215,8 +245,8 @@ function render({ model, el }) {
     const focusKey = active && groupsTable.contains(active) ? active.getAttribute("data-key") : null;
     const list = groups();
     const c = choices();
-    setupHint.textContent = `Per level of ${c.modifier}: shares of the four response types (immune is the rest). ` +
-      "The true effect is causal − preventive.";
+    setupHint.textContent = `Per level of ${c.modifier}: its weight (relative size) and the shares of the four ` +
+      "response types (immune is the rest). The true effect is causal − preventive.";
     groupsTable.replaceChildren();
     const head = h("tr");
     for (const label of ["level", "weight", "doomed", "causal", "preventive", "immune", "effect", ""]) {
@@ -229,7 +259,7 @@ function render({ model, el }) {
       const tr = h("tr", { "data-index": String(i) });
       const name = h("input", { type: "text", class: "sg-lab-name", "data-key": `${i}:level`, "aria-label": `Name of level ${i + 1}` });
       name.value = String(g.level ?? "");
-      name.addEventListener("change", () => {
+      onCommit(name, () => {
         const next = groups();
         next[i].level = name.value.trim();
         groupsError.textContent = "";
@@ -240,7 +270,7 @@ function render({ model, el }) {
       tr.append(td0);
       const weight = h("input", { type: "number", min: "0", max: "1", step: "0.05", class: "sg-lab-num", "data-key": `${i}:weight`, "aria-label": `Share of people in ${g.level}` });
       weight.value = String(g.weight);
-      weight.addEventListener("change", () => {
+      onCommit(weight, () => {
         const v = Number(weight.value);
         if (!(v > 0 && v <= 1)) {
           groupsError.textContent = `The weight of ${g.level} must be above 0 and at most 1 (weights are rescaled to sum to 1).`;
@@ -258,7 +288,7 @@ function render({ model, el }) {
       for (const t of EDITABLE) {
         const input = h("input", { type: "number", min: "0", max: "1", step: "0.01", class: "sg-lab-num", "data-type": t, "data-key": `${i}:${t}`, "aria-label": `${t} share in ${g.level}` });
         input.value = String(g[t]);
-        input.addEventListener("change", () => {
+        onCommit(input, () => {
           const { group, error } = editShare(groups()[i], t, Number(input.value));
           if (error || input.value.trim() === "") {
             groupsError.textContent = error || `The ${t} share must be a number from 0 to 1.`;
@@ -346,19 +376,19 @@ function render({ model, el }) {
     confValue.textContent = fmt(Number(confInput.value), 2);
   });
   confInput.addEventListener("change", () => write("confounding", Number(confInput.value)));
-  nInput.addEventListener("change", () => {
+  onCommit(nInput, () => {
     const c = choices();
     const v = wholeNumber(nInput, "People per draw", c.min_n, c.max_n);
     if (v !== null) write("n", v);
   });
-  seedInput.addEventListener("change", () => {
+  onCommit(seedInput, () => {
     const v = wholeNumber(seedInput, "The random state", 0, 2 ** 31 - 1);
     if (v !== null) write("seed", v);
   });
   newDraw.addEventListener("click", () => write("seed", Number(model.get("seed")) + 1));
   methodSel.addEventListener("change", () => write("method", methodSel.value));
   levelSel.addEventListener("change", () => write("level", Number(levelSel.value)));
-  drawsInput.addEventListener("change", () => {
+  onCommit(drawsInput, () => {
     const v = wholeNumber(drawsInput, "Draws", 1, choices().max_draws);
     if (v !== null) write("draws", v);
   });

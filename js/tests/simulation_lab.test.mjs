@@ -219,7 +219,7 @@ test("the plot places truth, crude and adjusted marks on the shared axis", () =>
   const { root } = mount();
   const svg = root.querySelector("svg.sg-lab-plot");
   assert.equal(Number(svg.getAttribute("height")), 90);
-  const x = xScale([-0.02, 0.44], 10, 230);
+  const x = xScale([-0.02, 0.44], 10, 290);
   const low = svg.querySelector('g.sg-lab-row[data-stratum="group=low"]');
   assert.ok(Math.abs(Number(low.querySelector(".sg-lab-truth").getAttribute("data-x")) - x(0.052)) < 1e-9);
   assert.ok(Math.abs(Number(low.querySelector(".sg-lab-crude .sg-lab-point").getAttribute("data-x")) - x(0.25)) < 1e-9);
@@ -324,4 +324,23 @@ test("cleanup pairs every model.on with model.off", () => {
   cleanup();
   assert.equal(model.handlerCount(), 0);
   assert.equal(model.log.off.length, model.log.on.length);
+});
+
+test("Enter commits an edit once (the later change event does not write again)", () => {
+  const { model, root } = mount();
+  const input = root.querySelector('[data-control="n"]');
+  input.dispatchEvent(new Event("focus"));
+  input.value = "700";
+  const enter = new KeyboardEvent("keydown", { key: "Enter", bubbles: true, cancelable: true });
+  input.dispatchEvent(enter);
+  assert.equal(model.get("n"), 700);
+  assert.equal(enter.defaultPrevented, true);
+  const saves = model.log.saves;
+  input.dispatchEvent(new Event("change", { bubbles: true }));
+  assert.equal(model.log.saves, saves);
+  const share = root.querySelector('tr[data-index="0"] input[data-type="preventive"]');
+  share.value = "0";
+  share.dispatchEvent(new KeyboardEvent("keydown", { key: "Enter", bubbles: true }));
+  assert.equal(model.get("groups")[0].preventive, 0);
+  assert.equal(model.get("groups")[0].immune, 0.6);
 });

@@ -210,7 +210,11 @@ class LabSetup:
         """Python source of the calls behind one draw: ``sg.simulate(...)`` then three ``sg.analyze(...)``."""
         sim = self.simulate_args(seed)
         lines = ["import stratagem as sg", "", f"{data_name} = sg.simulate("]
-        lines += [f"    {k}={v!r}," for k, v in sim.items()]
+        for key, value in sim.items():
+            if key == "shares":  # one level per line, for reading
+                lines += ["    shares={", *(f"        {k!r}: {v!r}," for k, v in value.items()), "    },"]
+            else:
+                lines.append(f"    {key}={value!r},")
         lines.append(")")
         common = {k: v for k, v in self.analyze_args()["crude"].items() if k != "method"}
         lines.append("common = dict(" + ", ".join(f"{k}={v!r}" for k, v in common.items()) + ")")
@@ -233,7 +237,9 @@ class LabSetup:
             value = getattr(self, name)
             if name == "weights" and len(set(value.values())) == 1:
                 continue  # equal weights are the default
-            if value != getattr(default, name) or name == "shares":
+            if name == "shares":
+                args += ["    shares={", *(f"        {k!r}: {v!r}," for k, v in value.items()), "    },"]
+            elif value != getattr(default, name):
                 args.append(f"    {name}={value!r},")
         return "\n".join(["setup = LabSetup(", *args, ")"])
 

@@ -24,6 +24,7 @@ import math
 import threading
 import time
 from collections.abc import Mapping
+
 import anywidget
 import pandas as pd
 import traitlets
