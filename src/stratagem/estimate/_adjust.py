@@ -23,7 +23,6 @@ from __future__ import annotations
 from dataclasses import dataclass, field
 
 import numpy as np
-from scipy.special import expit
 
 from ..frame import Prepared
 from ..spec import Spec
@@ -175,7 +174,7 @@ def _fit(u: Unit, need_ps: bool, need_om: bool, start_ps=None, start_om=None, ps
     ok &= (n1 > 0) & (u.W.sum(axis=1) - n1 > 0)
     if need_ps:
         u.ps = glm.fit(u.Z, u.a, u.W, family="binomial", mask=u.ps_mask, beta0=start_ps, tol=tol)
-        u.E = expit(glm.linear_predictor(u.Z, u.ps.beta))
+        u.E = glm.logistic(glm.linear_predictor(u.Z, u.ps.beta))
         if ps_required:
             ok &= u.ps.converged
     if need_om:
@@ -186,7 +185,7 @@ def _fit(u: Unit, need_ps: bool, need_om: bool, start_ps=None, start_om=None, ps
         eta1 = eta + ba * (1.0 - u.a)
         eta0 = eta - ba * u.a
         if u.binary:
-            u.mu, u.Q1, u.Q0 = expit(eta), expit(eta1), expit(eta0)
+            u.mu, u.Q1, u.Q0 = glm.logistic(eta), glm.logistic(eta1), glm.logistic(eta0)
         else:
             u.mu, u.Q1, u.Q0 = eta, eta1, eta0
         ok &= u.om.converged

@@ -30,11 +30,89 @@ from dataclasses import dataclass
 import numpy as np
 from scipy.special import expit
 
-__all__ = ["GLMFit", "fit", "linear_predictor", "information", "projection"]
+__all__ = ["GLMFit", "fit", "linear_predictor", "information", "projection", "logistic", "weighted_gram"]
 
 FAMILIES = ("binomial", "gaussian")
 PAIR_BYTES = 256 * 2**20  # largest (n x p(p+1)/2) table of column products kept for batched fits
 SEPARATION_ETA = 15.0
+CHUNK_ROWS = 4096  # rows per block of a single fit's Newton step (a block of X stays in cache)
+EXP_LIMIT = 700.0  # exp(700) is finite; logistic(-700) ~ 1e-304, below any meaningful risk
+
+
+def logistic(eta: np.ndarray, out_rest: bool = False):
+    """``expit(eta)`` (and ``1 - expit(eta)``, computed without cancellation, if ``out_rest``).
+
+    Written with numpy's vectorised ``exp`` because ``scipy.special.expit`` is several times slower
+    on large arrays; ``1 / (1 + exp(-eta))`` is scipy's own formula. ``eta`` is clipped at
+    ``-EXP_LIMIT`` so ``exp`` cannot overflow.
+    """
+    t = np.maximum(eta, -EXP_LIMIT)
+    np.negative(t, out=t)
+    np.exp(t, out=t)  # t = exp(-eta)
+    mu = t + 1.0
+    np.reciprocal(mu, out=mu)
+    if not out_rest:
+        return mu
+    t *= mu  # exp(-eta) / (1 + exp(-eta)) = 1 - mu, accurate when mu is near 1
+    return mu, t
+
+
+def weighted_gram(X: np.ndarray, s: np.ndarray, extra: np.ndarray | None = None) -> np.ndarray:
+    """``X' diag(s) X`` (p, p), or ``X' [diag(s) X, extra]`` (p, p + 1) when ``extra`` (n,) is given.
+
+    Computed over blocks of ``CHUNK_ROWS`` rows summed in a fixed order, so no (n, p) temporary is
+    made and the result does not depend on the number of BLAS threads.
+    """
+    n, p = X.shape
+    q = p + (extra is not None)
+    out = np.zeros((p, q))
+    buf = np.empty((min(CHUNK_ROWS, n), q))
+    for lo in range(0, n, CHUNK_ROWS):
+        hi = min(n, lo + CHUNK_ROWS)
+        Xc, M = X[lo:hi], buf[: hi - lo]
+        np.multiply(Xc, s[lo:hi, None], out=M[:, :p])
+        if extra is not None:
+            M[:, p] = extra[lo:hi]
+        out += Xc.T @ M
+    return out
+
+
+def _newton_single(X, y, w, mask, beta, tol, max_iter, y_binary):
+    """Logistic Newton steps for one model, each step one pass over ``X`` in cache-sized blocks:
+    per block the linear predictor, ``w mu (1 - mu)`` and ``w (y - mu)``, then ``X' [S X, r]``."""
+    n, p = X.shape
+    y_one = y == 1
+    converged = False
+    n_iter = 0
+    M = mask[None, :]
+    buf = np.empty((min(CHUNK_ROWS, n), p + 1))
+    for it in range(max_iter):
+        n_iter = it + 1
+        HG = np.zeros((p, p + 1))
+        for lo in range(0, n, CHUNK_ROWS):
+            hi = min(n, lo + CHUNK_ROWS)
+            Xc, wc, B = X[lo:hi], w[lo:hi], buf[: hi - lo]
+            mu, rest = logistic(Xc @ beta, out_rest=True)
+            if y_binary:
+                r = np.where(y_one[lo:hi], rest, -mu)
+            else:
+                yc = y[lo:hi]
+                r = yc * rest - (1.0 - yc) * mu
+            r *= wc
+            mu *= rest
+            mu *= wc  # w mu (1 - mu)
+            np.multiply(Xc, mu[:, None], out=B[:, :p])
+            B[:, p] = r
+            HG += Xc.T @ B
+        step = _solve(HG[None, :, :p], HG[None, :, p], M)[0]
+        new = beta + step
+        beta = new
+        if not np.isfinite(new).all():
+            break
+        if np.abs(step).max(initial=0.0) <= tol * (1.0 + np.abs(new).max(initial=0.0)):
+            converged = True
+            break
+    return beta, converged, n_iter
 
 
 @dataclass
@@ -155,7 +233,20 @@ def fit(
     converged = np.zeros(B, dtype=bool)
     separated = np.zeros(B, dtype=bool)
     n_iter = 0
-    if family == "gaussian":
+    if B == 1 and family == "gaussian":
+        HG = weighted_gram(X, W[0], W[0] * y)
+        beta = _solve(HG[None, :, :p], HG[None, :, p], M)
+        converged[:] = True
+        n_iter = 1
+    elif B == 1:
+        y_binary = bool(np.all((y == 0) | (y == 1)))
+        b, conv, n_iter = _newton_single(X, y, W[0], M[0], beta[0].copy(), tol, max_iter, y_binary)
+        beta[0] = b
+        converged[0] = conv
+        if not conv:
+            eta = linear_predictor(X, np.nan_to_num(b))
+            separated[0] = bool(((np.abs(eta) > SEPARATION_ETA) & (W[0] > 0)).any()) or not np.isfinite(b).all()
+    elif family == "gaussian":
         H = _crossprod(X, W, pairs)
         beta = _solve(H, (W * y) @ X, M)
         converged[:] = True
@@ -199,8 +290,7 @@ def fit(
 
 def information(X: np.ndarray, w: np.ndarray, v: np.ndarray, mask: np.ndarray) -> np.ndarray:
     """Mean information ``sum(w v x x') / sum(w)`` restricted to the masked columns (one model)."""
-    Xa = X[:, mask]
-    return (Xa * (w * v)[:, None]).T @ Xa / w.sum()
+    return weighted_gram(X, w * v)[np.ix_(mask, mask)] / w.sum()
 
 
 def projection(
@@ -215,5 +305,6 @@ def projection(
     (Stefanski & Boos, *The American Statistician* 56, 2002).
     """
     info = information(X, w, v, mask)
-    c = np.linalg.lstsq(info, D[mask], rcond=None)[0]
-    return (X[:, mask] @ c) * resid
+    c = np.zeros(X.shape[1])
+    c[mask] = np.linalg.lstsq(info, D[mask], rcond=None)[0]
+    return (X @ c) * resid
