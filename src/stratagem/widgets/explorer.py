@@ -16,6 +16,10 @@ JSON (:func:`~.payload.analysis_payload`) together with a static HTML snapshot t
 population is picked (``target=`` or :meth:`Explorer.set_target`), each new Analysis is also passed
 to :func:`stratagem.transport`, and the effect in the target is shown beside the overall effect.
 Nothing shown is computed anywhere but in ``analyze`` and ``transport``.
+
+A choice seen before (the same Spec on a table whose columns still hash the same) reuses its
+Analysis instead of computing it again: ``analyze`` is a pure function of the table and the Spec, so
+the numbers are the same; a table changed in place is analysed again.
 """
 
 from __future__ import annotations
@@ -62,6 +66,7 @@ def _check_target(data, name: str = "target", weights=None, sampled: bool = True
     if not isinstance(sampled, bool):
         raise SpecError(f"The 'sampled' parameter must be True or False; got {sampled!r}.")
     return Target(data, name, weights, sampled)
+
 
 _PACKAGE = pathlib.Path(__file__).resolve().parent.parent
 
