@@ -22,6 +22,8 @@ __version__ = "0.1.0"
 __all__ = [
     "Analysis",
     "CAUTION",
+    "Explorer",
+    "SimulationLab",
     "DEMO_DESCRIPTION",
     "Spec",
     "StratagemError",
