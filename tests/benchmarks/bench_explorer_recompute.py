@@ -87,7 +87,10 @@ def stages(df: pd.DataFrame, spec: Spec, target: pd.DataFrame, repeats: int) -> 
     out["prepare"] = timed(lambda: prepare(df, spec), repeats)
     prep, resolved = out["prepare"][2]
     estimator = get_estimator(resolved.method)
-    out["estimate"] = timed(lambda: estimator(prep, resolved), repeats)
+    # A fresh Prepared per repeat: the adjusted estimators keep the layout of the last Prepared
+    # they saw, which a new drop never has.
+    fresh = [prepare(df, spec)[0] for _ in range(repeats)]
+    out["estimate"] = timed(lambda: estimator(fresh.pop(), resolved), repeats)
     gm = out["estimate"][2]
     out["effects"] = timed(lambda: _effects_table(prep, resolved, gm, None), repeats)
     table = out["effects"][2]
