@@ -332,14 +332,6 @@ def test_light_and_dark_theme(page, lab_server, artifacts):
         assert ratio >= 4.5, f"table text contrast {ratio:.1f} < 4.5 in {theme}"
 
 
-# Defect seen 2026-12 in the widget (widgets/explorer.py + js/explorer.js): every new result calls
-# update_display for the text/html snapshot, and JupyterLab then re-creates the widget's view from
-# scratch (the .sg-explorer element is replaced). Focus falls back to the notebook cell (so the next
-# Enter or arrow key drives the notebook, not the widget) and the view resets to "Effects". A fix:
-# keep the open view in a trait (or the model) and refocus the chip with the same data-column after
-# a re-render, or refresh the snapshot without re-rendering the live view.
-@pytest.mark.xfail(reason="a new result re-creates the view: focus and the open view are lost",
-                   strict=False)
 def test_focus_and_view_survive_a_recompute(page, lab_server):
     """Keyboard users keep their place: after Enter adds a modifier, focus stays in the widget, and
     a control changed while another view is open leaves that view open."""
