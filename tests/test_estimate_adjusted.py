@@ -286,7 +286,7 @@ def test_confounder_constant_within_one_stratum(sim):
 
 
 @pytest.mark.parametrize("method", ADJUSTED)
-def test_tiny_stratum_is_not_estimable_and_overall_comes_from_a_pooled_fit(sim, method):
+def test_tiny_stratum_is_not_estimable_and_overall_combines_the_estimable_strata(sim, method):
     df = sim.iloc[:4000].copy()
     df["grp"] = "big"
     pick = np.r_[np.flatnonzero(df["exposed"] == 1)[:2], np.flatnonzero(df["exposed"] == 0)[:2]]
@@ -295,7 +295,11 @@ def test_tiny_stratum_is_not_estimable_and_overall_comes_from_a_pooled_fit(sim, 
     assert gm.status[0] == OK
     assert gm.status[1].startswith("fewer rows (4) than model parameters (")
     assert gm.status[2] == OK and np.isfinite(gm.m1[2]) and np.isfinite(gm.v11[2])
-    assert any("pooled" in n or "one model on all rows" in n for n in gm.notes)
+    # the overall group is the estimable stratum alone (the only one left), said in a note
+    assert gm.m1[2] == gm.m1[0] and gm.m0[2] == gm.m0[0]
+    assert gm.v11[2] == pytest.approx(gm.v11[0], rel=1e-12)
+    assert any("combines the 1 estimable strata only (3996 of 4000 rows)" in n and "'grp=tiny'" in n
+               for n in gm.notes)
     a = sg.analyze(df, exposure="exposed", outcome="outcome", confounders=CONF, strata=("grp",), method=method)
     assert np.isnan(a.strata["estimate"].iloc[1]) and "fewer rows" in a.strata["status"].iloc[1]
 
@@ -305,16 +309,28 @@ def test_stratum_without_unexposed_rows(sim):
     df = df[~((df["sex"] == "m") & (df["exposed"] == 0))]
     _, _, gm = means(df, "ipw", confounders=CONF, strata=("sex",))
     assert gm.status[1] == "no unexposed rows in this stratum"
-    assert gm.status[2] != OK  # the pooled propensity model separates on the stratum indicator
-    assert "propensity model did not converge" in gm.status[2]
+    assert gm.status[2] == OK and gm.m1[2] == gm.m1[0]  # the overall is the estimable stratum's
+    assert any("left out: 'sex=m'" in n for n in gm.notes)
 
 
 def test_separation_in_a_stratum_is_reported(sim):
     df = sim.iloc[:4000].copy()
     df["flag"] = np.where(df["sex"] == "f", df["exposed"], 0)  # predicts exposure among f perfectly
     _, _, gm = means(df, "ipw", confounders=CONF + ("flag",), strata=("sex",))
-    assert "propensity model did not converge (separation" in gm.status[0]
+    # found before fitting: among f, flag = 0 holds only unexposed rows
+    assert gm.status[0].startswith("positivity fails: confounder 'flag' = 0 has no exposed rows")
+    assert "separates" in gm.status[0]
     assert gm.status[1] == OK
+    assert gm.status[2] == OK and gm.m1[2] == gm.m1[1]
+
+
+def test_separation_by_a_numeric_confounder_is_reported(sim):
+    df = sim.iloc[:4000].copy()
+    noise = np.random.default_rng(3).uniform(0, 1, len(df))
+    df["score"] = np.where(df["sex"] == "f", 2.0 * df["exposed"] + noise, noise)  # separates among f
+    _, _, gm = means(df, "ipw", confounders=CONF + ("score",), strata=("sex",))
+    assert "separat" in gm.status[0] and ("did not converge" in gm.status[0] or "positivity" in gm.status[0])
+    assert np.isnan(gm.m1[0]) and gm.status[1] == OK
 
 
 def test_outcome_constant_in_a_stratum():

@@ -102,11 +102,15 @@ class _Groups:
         return np.vstack([per, per.sum(axis=0, keepdims=True)])
 
     def extreme(self, values: np.ndarray, how: str) -> np.ndarray:
-        """Minimum or maximum of ``values`` per (group, arm) over kept rows; NaN where empty."""
+        """Minimum or maximum of ``values`` per (group, arm) over kept rows; NaN where empty.
+
+        NaN values (rows of a stratum whose model was not fitted) are skipped: comparing NaN in
+        ``ufunc.at`` raises "invalid value" RuntimeWarnings."""
         fill = np.inf if how == "min" else -np.inf
         ufunc = np.minimum if how == "min" else np.maximum
         out = np.full(2 * self.k, fill)
-        ufunc.at(out, self.code, np.where(self.keep, values, fill))  # one unbuffered pass (numpy >= 1.25)
+        kept = np.where(self.keep & ~np.isnan(values), values, fill)
+        ufunc.at(out, self.code, kept)  # one unbuffered pass (numpy >= 1.25)
         per = out.reshape(self.k, 2)
         per = np.vstack([per, (per.min(axis=0) if how == "min" else per.max(axis=0))[None, :]])
         return np.where(np.isfinite(per), per, np.nan)

@@ -10,8 +10,17 @@ batched: one Newton iteration updates every bootstrap replicate of a stratum at 
 The overall group (index K) is the effect in the whole sample: the n-weighted combination of the
 strata's adjusted potential-outcome means (its influence function is each row's stratum influence
 function plus the deviation of the stratum's mean from the overall mean), so the overall row agrees
-with the strata. When a stratum cannot be estimated, the overall group is instead estimated from one
-pooled fit on all rows whose models add indicators of the strata (main effects), with a note.
+with the strata. When a stratum cannot be estimated (too few rows, no exposed or no unexposed rows,
+a positivity failure, a model that does not converge), the overall group combines the estimable
+strata only, and a note names the strata left out and their rows: the overall effect then describes
+the population of the estimable strata. (A pooled model borrowing strength across strata would have
+to assume the left-out stratum's effect equal to the others', the very thing under study, and its
+stratum indicator may itself separate.)
+
+Positivity is checked before fitting a propensity model: a level of a categorical (or 0/1) confounder
+whose rows in a stratum are all exposed or all unexposed makes the propensity model separate, and the
+stratum is reported as not estimable with that level named. A fitted propensity model whose
+propensities reach 0 or 1 (``|logit| > 30``) is reported the same way.
 
 Rows are sorted by stratum once, so each stratum's rows are one contiguous block of a single design
 matrix ``Z = [1, standardised confounders, exposure]``; the propensity model uses the same matrix with
@@ -23,12 +32,14 @@ from __future__ import annotations
 from dataclasses import dataclass, field
 
 import numpy as np
+import pandas as pd
 
-from ..frame import Prepared
+from ..frame import Prepared, _zero_one
 from ..spec import Spec
 from . import glm
 from .base import OK, GroupMeans, arm_counts
-from .design import confounder_design, independent_columns
+from .design import _is_numeric as _numeric
+from .design import _levels, confounder_design, independent_columns
 
 __all__ = ["Layout", "Unit", "layout", "estimate", "boot_means", "weighted_quantile"]
 
@@ -53,7 +64,7 @@ class Layout:
 
 @dataclass
 class Unit:
-    """One fitted unit (a stratum, or the pooled fit on all rows) for B weight vectors."""
+    """One fitted unit (a stratum) for B weight vectors."""
 
     Z: np.ndarray
     a: np.ndarray
@@ -126,22 +137,7 @@ def layout(prep: Prepared) -> Layout:
     return Layout(order, bounds, Z, a, prep.y[order], w, names, notes, masks, prep.binary)
 
 
-def _pooled_design(lay: Layout, prep: Prepared) -> tuple[np.ndarray, np.ndarray]:
-    """``[1, confounders, stratum indicators, exposure]`` over all (sorted) rows, and its mask."""
-    k = prep.n_strata
-    n, p = lay.Z.shape
-    Zp = np.empty((n, p + k - 1))
-    Zp[:, : p - 1] = lay.Z[:, :-1]
-    strat = prep.stratum[lay.order]
-    for j in range(1, k):
-        Zp[:, p - 2 + j] = strat == j
-    Zp[:, -1] = lay.a
-    keep, _ = independent_columns(Zp[:, 1:-1], lay.w)
-    mask = np.concatenate([[True], keep, [True]])
-    return Zp, mask
-
-
-def _status(u: Unit, need_ps: bool, need_om: bool) -> str:
+def _status(u: Unit, need_ps: bool, need_om: bool, levels=None) -> str:
     w = u.W[0]
     n = w.sum()
     n1 = (w * u.a).sum()
@@ -155,11 +151,54 @@ def _status(u: Unit, need_ps: bool, need_om: bool) -> str:
     params = u.Z.shape[1] - (0 if need_om else 1)  # before any column is left out in this stratum
     if rows < params:
         return f"fewer rows ({rows}) than model parameters ({params})"
+    if need_ps and levels is not None:
+        why = _positivity(levels, w, u.a)
+        if why:
+            return why
     if need_om and u.binary:
         ys = u.y[w > 0]
         if ys.min() == ys.max():
             return "outcome is constant in this stratum (all 0 or all 1): the outcome model cannot be fitted"
     return OK
+
+
+def _level_codes(confounders, order: np.ndarray) -> list:
+    """``(name, labels, codes)`` of every categorical, bool or 0/1 confounder, rows sorted as the
+    layout (codes index ``labels``; -1 never occurs, rows with missing values were dropped)."""
+    out = []
+    for col in confounders.columns:
+        s = confounders[col]
+        if _numeric(s):
+            v = s.to_numpy(dtype=float)
+            if not _zero_one(v):
+                continue
+            labels, codes = ["0", "1"], v.astype(np.int64)
+        else:
+            labels = _levels(s)
+            if len(labels) < 2:
+                continue
+            codes = pd.Categorical(s, categories=labels).codes.astype(np.int64)
+        out.append((str(col), [str(x) for x in labels], codes[order]))
+    return out
+
+
+def _positivity(levels, w: np.ndarray, a: np.ndarray) -> str:
+    """The first confounder level whose rows (with weight) in this stratum are all exposed or all
+    unexposed, described as a positivity failure; ``""`` if there is none."""
+    for name, labels, codes in levels:
+        k = len(labels)
+        n1 = np.bincount(codes, weights=w * a, minlength=k)
+        n_all = np.bincount(codes, weights=w, minlength=k)
+        n0 = n_all - n1
+        for j in range(k):
+            if n_all[j] > 0 and (n1[j] <= 0 or n0[j] <= 0):
+                arm, other = ("exposed", "unexposed") if n1[j] <= 0 else ("unexposed", "exposed")
+                return (
+                    f"positivity fails: confounder {name!r} = {labels[j]} has no {arm} rows in this "
+                    f"stratum ({n_all[j]:g} rows, all {other}), so the propensity model separates; "
+                    f"merge levels of {name!r}, or leave it out of the strata's models"
+                )
+    return ""
 
 
 BOOT_TOL = 1e-6  # Newton converges quadratically: after a step this small the error is ~1e-12
@@ -192,7 +231,17 @@ def _fit(u: Unit, need_ps: bool, need_om: bool, start_ps=None, start_om=None, ps
     u.ok = ok
 
 
+PS_EXTREME = 9.357622968840175e-14  # expit(-30): a propensity this close to 0 or 1 is separation
+
+
 def _fit_status(u: Unit, need_ps: bool, ps_required: bool, need_om: bool) -> str:
+    if need_ps and ps_required and u.ps.converged[0]:
+        e = u.E[0]
+        if np.any(((e < PS_EXTREME) | (e > 1.0 - PS_EXTREME)) & (u.W[0] > 0)):
+            return (
+                "positivity fails: the confounders predict exposure (almost) perfectly here, so "
+                "fitted propensities reach 0 or 1 (the propensity model separates)"
+            )
     if need_ps and ps_required and not u.ps.converged[0]:
         why = (
             " (separation: the confounders predict exposure perfectly here, so positivity fails)"
@@ -252,21 +301,22 @@ class Run:
 
     lay: Layout
     strata: list
-    pooled: Unit | None
     notes: list
 
 
 def run(prep: Prepared, spec: Spec, W: np.ndarray | None, *, need_ps: bool, need_om: bool,
         ps_required: bool, start: Run | None = None) -> Run:
-    """Fit every stratum (and the pooled unit if needed) for weight rows ``W`` (original row order)."""
+    """Fit every stratum for weight rows ``W`` (original row order)."""
     lay = start.lay if start is not None else _cached_layout(prep)
     Ws = lay.w[None, :] if W is None else W[:, lay.order]
+    levels = _level_codes(prep.confounders, lay.order) if start is None and need_ps and ps_required else None
     units = []
     for s in range(prep.n_strata):
         lo, hi = lay.bounds[s], lay.bounds[s + 1]
         u = Unit(lay.Z[lo:hi], lay.a[lo:hi], lay.y[lo:hi], Ws[:, lo:hi], lay.masks[s].copy(), lay.binary)
         if start is None:
-            u.status = _status(u, need_ps and ps_required, need_om)
+            here = None if levels is None else [(nm, lab, c[lo:hi]) for nm, lab, c in levels]
+            u.status = _status(u, need_ps and ps_required, need_om, here)
         else:
             u.status = start.strata[s].status
         if u.status == OK:
@@ -275,20 +325,7 @@ def run(prep: Prepared, spec: Spec, W: np.ndarray | None, *, need_ps: bool, need
             if start is None:
                 u.status = _fit_status(u, need_ps, ps_required, need_om)
         units.append(u)
-    pooled = None
-    wanted = prep.n_strata > 1 and any(u.status != OK for u in units)
-    if start is not None:
-        wanted = start.pooled is not None
-    if wanted:
-        Zp, mask = _pooled_design(lay, prep)
-        pooled = Unit(Zp, lay.a, lay.y, Ws, mask, lay.binary)
-        pooled.status = _status(pooled, need_ps and ps_required, need_om) if start is None else start.pooled.status
-        if pooled.status == OK:
-            ref = start.pooled if start is not None else None
-            _fit(pooled, need_ps, need_om, _beta(ref, "ps"), _beta(ref, "om"), ps_required)
-            if start is None:
-                pooled.status = _fit_status(pooled, need_ps, ps_required, need_om)
-    return Run(lay, units, pooled, list(lay.notes))
+    return Run(lay, units, list(lay.notes))
 
 
 def _beta(ref: Unit | None, which: str):
@@ -327,7 +364,7 @@ def estimate(prep: Prepared, spec: Spec, unit_means, *, need_ps: bool, need_om: 
     """
     r = run(prep, spec, None, need_ps=need_ps, need_om=need_om, ps_required=ps_required)
     if need_ps and ps_required:
-        _weights([u for u in r.strata] + ([r.pooled] if r.pooled is not None else []), spec)
+        _weights(r.strata, spec)
     K = prep.n_strata
     G = K + 1
     m1, m0, v11, v00, v10 = (np.full(G, np.nan) for _ in range(5))
@@ -339,41 +376,35 @@ def estimate(prep: Prepared, spec: Spec, unit_means, *, need_ps: bool, need_om: 
             ifs.append(None)
             continue
         a1, a0, f1, f0 = unit_means(u, spec, True)
-        m1[s], m0[s] = a1[0], a0[0]
         w = u.W[0]
-        v11[s], v00[s], v10[s] = (np.sum(w * x * z) / N[s] ** 2 for x, z in ((f1, f1), (f0, f0), (f1, f0)))
+        v = [np.sum(w * x * z) / N[s] ** 2 for x, z in ((f1, f1), (f0, f0), (f1, f0))]
+        if not np.isfinite([a1[0], a0[0], *v]).all():
+            u.status = status[s] = (
+                "the fitted models give undefined potential-outcome means here (a propensity or "
+                "prediction of exactly 0 or 1): positivity or separation problem"
+            )
+            ifs.append(None)
+            continue
+        m1[s], m0[s] = a1[0], a0[0]
+        v11[s], v00[s], v10[s] = v
         ifs.append((f1, f0))
     notes = list(r.notes)
-    if r.pooled is None:
-        if all(st == OK for st in status[:K]):
-            tot = N.sum()
-            m1[K] = np.sum(N * m1[:K]) / tot
-            m0[K] = np.sum(N * m0[:K]) / tot
-            acc = np.zeros(3)
-            for s, u in enumerate(r.strata):
-                f1, f0 = ifs[s]
-                g1, g0 = f1 + m1[s] - m1[K], f0 + m0[s] - m0[K]
-                w = u.W[0]
-                acc += (np.sum(w * g1 * g1), np.sum(w * g0 * g0), np.sum(w * g1 * g0))
-            v11[K], v00[K], v10[K] = acc / tot**2
-        else:  # pragma: no cover - pooled is built whenever a stratum fails and K > 1
-            status[K] = "not estimable"
+    used = [s for s in range(K) if status[s] == OK]
+    if not used:
+        status[K] = status[0] if K == 1 else "not estimable: no stratum could be estimated"
     else:
-        u = r.pooled
-        bad = [str(prep.labels["stratum"].iloc[s]) for s, x in enumerate(r.strata) if x.status != OK]
-        if u.status == OK:
-            a1, a0, f1, f0 = unit_means(u, spec, True)
-            w = u.W[0]
-            tot = w.sum()
-            m1[K], m0[K] = a1[0], a0[0]
-            v11[K], v00[K], v10[K] = (np.sum(w * x * z) / tot**2 for x, z in ((f1, f1), (f0, f0), (f1, f0)))
-            notes.append(
-                f"{name}: {len(bad)} stratum/strata not estimable ({', '.join(map(repr, bad[:3]))}"
-                f"{' ...' if len(bad) > 3 else ''}); the overall effect comes from one model on all rows "
-                "with indicators of the strata, not from combining the strata."
-            )
-        else:
-            status[K] = f"not estimable: the pooled model on all rows failed ({u.status})"
+        tot = N[used].sum()
+        m1[K] = np.sum(N[used] * m1[used]) / tot
+        m0[K] = np.sum(N[used] * m0[used]) / tot
+        acc = np.zeros(3)
+        for s in used:
+            f1, f0 = ifs[s]
+            g1, g0 = f1 + m1[s] - m1[K], f0 + m0[s] - m0[K]
+            w = r.strata[s].W[0]
+            acc += (np.sum(w * g1 * g1), np.sum(w * g0 * g0), np.sum(w * g1 * g0))
+        v11[K], v00[K], v10[K] = acc / tot**2
+        if len(used) < K:
+            notes.append(_left_out_note(name, prep, status, N, used))
     n, n1, n0 = arm_counts(prep)
     gm = GroupMeans(n, n1, n0, m1, m0, v11, v00, v10, status, notes=notes)
     if need_ps:
@@ -383,6 +414,18 @@ def estimate(prep: Prepared, spec: Spec, unit_means, *, need_ps: bool, need_om: 
     gm.extra["confounder_columns"] = tuple(r.lay.names)
     _remember(prep, spec, r)
     return gm
+
+
+def _left_out_note(name: str, prep: Prepared, status: list, N: np.ndarray, used: list) -> str:
+    K = prep.n_strata
+    out = [s for s in range(K) if s not in set(used)]
+    shown = "; ".join(f"{prep.labels['stratum'].iloc[s]!r} ({N[s]:g} rows: {status[s]})" for s in out[:3])
+    more = f"; and {len(out) - 3} more" if len(out) > 3 else ""
+    return (
+        f"{name}: the overall effect combines the {len(used)} estimable strata only "
+        f"({N[used].sum():g} of {N.sum():g} rows), so it describes their population; left out: "
+        f"{shown}{more}."
+    )
 
 
 def boot_means(prep: Prepared, spec: Spec, W: np.ndarray, unit_means, *, need_ps: bool,
@@ -407,25 +450,21 @@ def boot_means(prep: Prepared, spec: Spec, W: np.ndarray, unit_means, *, need_ps
         hi = min(B, lo + step)
         r = run(prep, spec, W[lo:hi], need_ps=need_ps, need_om=need_om, ps_required=ps_required,
                 start=start)
-        units = r.strata + ([r.pooled] if r.pooled is not None else [])
         if need_ps and ps_required:
-            _weights(units, spec)
+            _weights(r.strata, spec)
         Ns = np.zeros((hi - lo, K))
         for s, u in enumerate(r.strata):
-            Ns[:, s] = u.W.sum(axis=1)
             if u.status != OK:
                 continue
+            Ns[:, s] = u.W.sum(axis=1)
             a1, a0, _, _ = unit_means(u, spec, False)
             out1[lo:hi, s] = np.where(u.ok, a1, np.nan)
             out0[lo:hi, s] = np.where(u.ok, a0, np.nan)
-        if r.pooled is None:
-            tot = Ns.sum(axis=1)
-            out1[lo:hi, K] = np.sum(Ns * out1[lo:hi, :K], axis=1) / tot
-            out0[lo:hi, K] = np.sum(Ns * out0[lo:hi, :K], axis=1) / tot
-        elif r.pooled.status == OK:
-            a1, a0, _, _ = unit_means(r.pooled, spec, False)
-            out1[lo:hi, K] = np.where(r.pooled.ok, a1, np.nan)
-            out0[lo:hi, K] = np.where(r.pooled.ok, a0, np.nan)
+        used = [s for s in range(K) if r.strata[s].status == OK]
+        if used:  # the estimable strata of the full sample, as the overall estimate
+            tot = Ns[:, used].sum(axis=1)
+            out1[lo:hi, K] = np.sum(Ns[:, used] * out1[lo:hi, used], axis=1) / tot
+            out0[lo:hi, K] = np.sum(Ns[:, used] * out0[lo:hi, used], axis=1) / tot
     return out1, out0
 
 
