@@ -41,6 +41,7 @@ from ..errors import ColumnNotFoundError, DataError, SpecError, StratagemError
 from ..frame import modifier_summary
 from ..results import Analysis
 from ..spec import Spec
+from .display import SnapshotDisplay
 from .payload import Target, analysis_payload, run_transport
 from .snapshot import placeholder_html, snapshot_html
 from .worker import Outcome, Runner, kernel_post
@@ -124,7 +125,7 @@ def _friendly(exc: BaseException) -> str:
     return f"The analysis failed ({type(exc).__name__}: {exc}). Change a choice or report this as a bug."
 
 
-class Explorer(anywidget.AnyWidget):
+class Explorer(SnapshotDisplay, anywidget.AnyWidget):
     """Explore effect modification interactively: drag modifiers into "Stratify by", read effects.
 
     Parameters
@@ -173,6 +174,8 @@ class Explorer(anywidget.AnyWidget):
     transported : TransportResult or None
         ``transport(analysis, target)`` of the Analysis on screen, when it succeeded.
     """
+
+    _display_prefix = "stratagem-explorer"
 
     _esm = front_end_file("explorer.js")
     _css = front_end_file("explorer.css")
@@ -248,7 +251,7 @@ class Explorer(anywidget.AnyWidget):
         self._lock = threading.RLock()
         self._analysis: Analysis | None = None
         self._requested: Spec | None = None
-        self._display_id = None
+        self._display_id = None  # set when first displayed (SnapshotDisplay)
         self._last_progress = (0.0, 0.0)
         self._target = _check_target(target, target_name)
         self._transported = None
@@ -503,32 +506,3 @@ class Explorer(anywidget.AnyWidget):
             return html
         message = self._status.get("message") or "no result yet"
         return placeholder_html(message)
-
-    def _repr_mimebundle_(self, **kwargs):
-        bundle = super()._repr_mimebundle_(**kwargs)
-        if isinstance(bundle, tuple):  # (data, metadata)
-            data, meta = bundle
-        else:
-            data, meta = bundle, {}
-        data = dict(data or {})
-        data["text/html"] = self._snapshot_html()
-        return (data, meta) if isinstance(bundle, tuple) else data
-
-    def _ipython_display_(self, **kwargs) -> None:
-        from IPython.display import display
-
-        if self._display_id is None:
-            self._display_id = f"stratagem-explorer-{self.model_id}"
-        bundle = self._repr_mimebundle_()
-        data, meta = bundle if isinstance(bundle, tuple) else (bundle, {})
-        display(data, metadata=meta, raw=True, display_id=self._display_id)
-
-    def _refresh_display(self) -> None:
-        """Replace the ``text/html`` snapshot of every displayed copy (keeps saved notebooks current)."""
-        if self._display_id is None:
-            return
-        from IPython.display import update_display
-
-        bundle = self._repr_mimebundle_()
-        data, meta = bundle if isinstance(bundle, tuple) else (bundle, {})
-        update_display(data, metadata=meta, raw=True, display_id=self._display_id)

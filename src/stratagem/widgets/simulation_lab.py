@@ -32,6 +32,7 @@ import traitlets
 from ..errors import SpecError, StratagemError
 from ..results import CAUTION
 from ..simlab import ADJUSTED_METHODS, DEFAULT_SHARES, TYPES, LabDraw, LabSetup, compare, draw, repeat_draws
+from .display import SnapshotDisplay
 from .explorer import front_end_file
 from .payload import plain, records
 from .snapshot import nice_ticks
@@ -64,7 +65,7 @@ def _cleared(reason: str, _check) -> str:
     return reason
 
 
-class SimulationLab(anywidget.AnyWidget):
+class SimulationLab(SnapshotDisplay, anywidget.AnyWidget):
     """A lab for checking estimators on populations whose truth is known.
 
     Set, per level of a modifier, the shares of the four response types (doomed, causal,
@@ -96,6 +97,8 @@ class SimulationLab(anywidget.AnyWidget):
     sync : bool
         Compute on the calling thread instead of worker threads (for scripts and tests).
     """
+
+    _display_prefix = "stratagem-simlab"
 
     _esm = front_end_file("simulation_lab.js")
     _css = front_end_file("simulation_lab.css")
@@ -141,7 +144,7 @@ class SimulationLab(anywidget.AnyWidget):
         self._result: LabDraw | None = None
         self._comparison: pd.DataFrame | None = None
         self._repeats_frame: pd.DataFrame | None = None
-        self._display_id = None
+        self._display_id = None  # set when first displayed (SnapshotDisplay)
         self._snapshot: str | None = None
         self._last_progress = 0.0
         _check_draws(draws)
@@ -376,31 +379,6 @@ class SimulationLab(anywidget.AnyWidget):
     # -- display -------------------------------------------------------------------------------------
     def _snapshot_html(self) -> str:
         return snapshot_html(self._draw, self._repeats, self._status)
-
-    def _repr_mimebundle_(self, **kwargs):
-        bundle = super()._repr_mimebundle_(**kwargs)
-        data, meta = bundle if isinstance(bundle, tuple) else (bundle, {})
-        data = dict(data or {})
-        data["text/html"] = self._snapshot_html()
-        return (data, meta) if isinstance(bundle, tuple) else data
-
-    def _ipython_display_(self, **kwargs) -> None:
-        from IPython.display import display
-
-        if self._display_id is None:
-            self._display_id = f"stratagem-simlab-{self.model_id}"
-        bundle = self._repr_mimebundle_()
-        data, meta = bundle if isinstance(bundle, tuple) else (bundle, {})
-        display(data, metadata=meta, raw=True, display_id=self._display_id)
-
-    def _refresh_display(self) -> None:
-        if self._display_id is None:
-            return
-        from IPython.display import update_display
-
-        bundle = self._repr_mimebundle_()
-        data, meta = bundle if isinstance(bundle, tuple) else (bundle, {})
-        update_display(data, metadata=meta, raw=True, display_id=self._display_id)
 
 
 def _raise(exc, _check):
