@@ -1,7 +1,6 @@
 """Exact effects on populations whose two potential outcomes are known (simulate)."""
 
 import numpy as np
-import pandas as pd
 import pytest
 
 import stratagem as sg

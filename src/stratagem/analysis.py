@@ -7,8 +7,9 @@ the modification toolkit's tables. Everything shown anywhere in stratagem comes 
 
 from __future__ import annotations
 
+from collections.abc import Callable
 from importlib import import_module
-from typing import Any, Callable
+from typing import Any
 
 import numpy as np
 import pandas as pd

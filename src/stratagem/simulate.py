@@ -17,7 +17,7 @@ and adjustment for the covariates removes the bias.
 
 from __future__ import annotations
 
-from typing import Mapping, Sequence
+from collections.abc import Mapping, Sequence
 
 import numpy as np
 import pandas as pd

@@ -9,8 +9,9 @@ from __future__ import annotations
 
 import json
 import math
+from collections.abc import Mapping
 from dataclasses import asdict, dataclass, field, fields, replace
-from typing import Any, Mapping
+from typing import Any
 
 from .errors import SpecError
 
@@ -254,7 +255,7 @@ class Spec:
 
     # -- construction and conversion -------------------------------------------------------------
     @classmethod
-    def from_fields(cls, spec: "Spec | Mapping | None" = None, /, **fields_: Any) -> "Spec":
+    def from_fields(cls, spec: Spec | Mapping | None = None, /, **fields_: Any) -> Spec:
         """Build a Spec from another Spec or mapping, with ``fields_`` overriding its values."""
         unknown = sorted(set(fields_) - {f.name for f in fields(cls)})
         if unknown:
@@ -274,7 +275,7 @@ class Spec:
             raise SpecError(f"spec must be a Spec, a mapping or None; got {type(spec).__name__}.")
         return replace(spec, **fields_) if fields_ else spec
 
-    def replace(self, **changes: Any) -> "Spec":
+    def replace(self, **changes: Any) -> Spec:
         """Return a new Spec with ``changes`` applied (the Spec itself is never mutated)."""
         return Spec.from_fields(self, **changes)
 
@@ -292,12 +293,12 @@ class Spec:
         return json.dumps(self.to_dict(), sort_keys=True)
 
     @classmethod
-    def from_json(cls, text: str) -> "Spec":
+    def from_json(cls, text: str) -> Spec:
         """Read a Spec written by :meth:`to_json`."""
         try:
             data = json.loads(text)
         except json.JSONDecodeError as exc:
-            raise SpecError(f"Spec JSON could not be read ({exc}); pass text from Spec.to_json().")
+            raise SpecError(f"Spec JSON could not be read ({exc}); pass text from Spec.to_json().") from None
         if not isinstance(data, dict):
             raise SpecError("Spec JSON must be an object of parameters; pass text from Spec.to_json().")
         return cls.from_fields(None, **data)
