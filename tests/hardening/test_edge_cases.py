@@ -398,15 +398,6 @@ def test_float32_input_equals_its_float64_values(method, binary):
         assert one["mean_unexposed"] == pytest.approx(m0, rel=1e-5)
 
 
-MH_COUNTS_DEFECT = (
-    "estimate/mantel_haenszel.py _column_codes: a numeric confounder with more than 10 values is cut "
-    "at np.quantile of the rows, ignoring the counts column, so a table of counts gets other cut points "
-    "than its expanded rows and a different Mantel-Haenszel estimate (here OR 2.020 vs 1.925, RD 0.166 "
-    "vs 0.154); the quantiles should weight rows by their frequencies (as frame.py now does for modifiers)"
-)
-
-
-@pytest.mark.xfail(strict=True, reason=MH_COUNTS_DEFECT)
 @pytest.mark.parametrize("measure", ["or", "rd"])
 def test_mantel_haenszel_counts_table_equals_its_expanded_rows_with_a_numeric_confounder(measure):
     pytest.importorskip("stratagem.estimate.mantel_haenszel")

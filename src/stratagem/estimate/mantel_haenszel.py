@@ -55,7 +55,7 @@ import pandas as pd
 from scipy import sparse
 from statsmodels.stats.contingency_tables import StratifiedTable
 
-from ..frame import Prepared
+from ..frame import Prepared, _quantiles
 from ..spec import Spec
 from .base import OK, GroupMeans
 
@@ -85,17 +85,24 @@ def _is_numeric(s: pd.Series) -> bool:
     return pd.api.types.is_numeric_dtype(s) and not pd.api.types.is_bool_dtype(s)
 
 
-def _column_codes(s: pd.Series, name: str) -> tuple[np.ndarray, int, str | None]:
-    """Integer level codes (n,) of one confounder, the number of levels, and a note if binned."""
+def _column_codes(s: pd.Series, name: str, w: np.ndarray | None = None) -> tuple[np.ndarray, int, str | None]:
+    """Integer level codes (n,) of one confounder, the number of levels, and a note if binned.
+
+    A numeric confounder with many values is cut at quantiles that weight each row by its frequency
+    ``w`` (rows of weight 0 do not count), so a table of counts gets the cut points of its expanded
+    rows (the modifiers' binning in :mod:`stratagem.frame` does the same).
+    """
     if isinstance(s.dtype, pd.CategoricalDtype):
         return s.cat.codes.to_numpy().astype(np.int64), len(s.cat.categories), None
     codes, uniques = pd.factorize(s, sort=False)
-    if _is_numeric(s) and len(uniques) > LEVEL_THRESHOLD:
+    if _is_numeric(s):
         x = s.to_numpy(dtype=float)
-        edges = np.unique(np.quantile(x, np.linspace(0, 1, CONFOUNDER_BINS + 1)))
+        n_distinct = len(uniques) if w is None or np.all(w > 0) else len(np.unique(x[w > 0]))
+    if _is_numeric(s) and n_distinct > LEVEL_THRESHOLD:
+        edges = np.unique(_quantiles(x, w, np.linspace(0, 1, CONFOUNDER_BINS + 1)))
         inner = edges[1:-1]
         codes = np.searchsorted(inner, x, side="right").astype(np.int64)
-        return codes, len(inner) + 1, binning_note(name, len(uniques), inner)
+        return codes, len(inner) + 1, binning_note(name, n_distinct, inner)
     return codes.astype(np.int64), max(len(uniques), 1), None
 
 
@@ -126,7 +133,7 @@ def confounder_cells(prep: Prepared) -> Cells:
     size = 1
     notes = []
     for name in prep.confounders.columns:
-        codes, levels, note = _column_codes(prep.confounders[name], str(name))
+        codes, levels, note = _column_codes(prep.confounders[name], str(name), prep.w)
         if note:
             notes.append(note)
         if size * levels > _MAX_DENSE:
