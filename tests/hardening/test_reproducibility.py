@@ -152,7 +152,7 @@ def _relative_gap(a: list, b: list) -> float:
 
 
 def test_results_do_not_depend_on_blas_threads(thread_runs):
-    """Wald results are bit-identical; bootstrap results agree to 1e-12 (see the strict test below)."""
+    """Wald results are bit-identical; bootstrap results agree to 1e-12 (and bit-identical below)."""
     one, two, mine = thread_runs
     assert len(one) == len(two) == len(THREAD_CASES)
     for case, case_id, a, b, c in zip(THREAD_CASES, THREAD_IDS, one, two, mine):
@@ -163,22 +163,7 @@ def test_results_do_not_depend_on_blas_threads(thread_runs):
             assert _relative_gap(a, c) < 1e-12, case_id
 
 
-BLAS_DEFECT = (
-    "estimate/_adjust.py + glm.py batched bootstrap: replicate fits and means use BLAS matrix products "
-    "over the (B, n) weight matrix whose summation order changes with the number of BLAS threads, so "
-    "bootstrap se, ci_low, ci_high and p_value differ in the last bits (relative 1e-15 to 1e-13 on "
-    "the 4000-row demo table) between OPENBLAS_NUM_THREADS=1 and 2; Wald results are bit-identical"
-)
-
-
-def _bootstrap_param(method):
-    marks = []
-    if method in ("standardization", "ipw", "aipw"):
-        marks.append(pytest.mark.xfail(strict=True, reason=BLAS_DEFECT))
-    return pytest.param(method, id=method, marks=marks)
-
-
-@pytest.mark.parametrize("method", [_bootstrap_param(m) for m in AVAILABLE if m != "exact"])
+@pytest.mark.parametrize("method", [m for m in AVAILABLE if m != "exact"])
 def test_bootstrap_bit_identical_whatever_the_blas_threads(thread_runs, method):
     one, two, _ = thread_runs
     for case, case_id, a, b in zip(THREAD_CASES, THREAD_IDS, one, two):

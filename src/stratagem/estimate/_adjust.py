@@ -91,10 +91,15 @@ class Unit:
         return m
 
 
+def _wdot(W: np.ndarray, v: np.ndarray) -> np.ndarray:
+    """``W @ v`` for W (B, n), summed without BLAS (whose summation order follows its threads)."""
+    return np.einsum("bn,n->b", W, v)
+
+
 def _standardise(x: np.ndarray, w: np.ndarray) -> None:
     """Centre and scale the columns of ``x`` in place (weighted), for conditioning only."""
     total = w.sum()
-    m = (w @ x) / total
+    m = glm.dot_cols(x, w) / total
     x -= m
     s = np.sqrt(np.einsum("i,ij,ij->j", w, x, x) / total)
     x /= np.where(s > 0, s, 1.0)
@@ -209,7 +214,7 @@ def _fit(u: Unit, need_ps: bool, need_om: bool, start_ps=None, start_om=None, ps
     tol = 1e-10 if start_ps is None and start_om is None else BOOT_TOL
     B = u.W.shape[0]
     ok = np.ones(B, dtype=bool)
-    n1 = u.W @ u.a
+    n1 = _wdot(u.W, u.a)
     ok &= (n1 > 0) & (u.W.sum(axis=1) - n1 > 0)
     if need_ps:
         u.ps = glm.fit(u.Z, u.a, u.W, family="binomial", mask=u.ps_mask, beta0=start_ps, tol=tol)
@@ -273,7 +278,7 @@ def _weights(units: list[Unit], spec: Spec) -> None:
     units = [u for u in units if u.E is not None]
     for u in units:
         N = u.W.sum(axis=1, keepdims=True)
-        p1 = (u.W @ u.a)[:, None] / np.where(N > 0, N, 1.0)
+        p1 = _wdot(u.W, u.a)[:, None] / np.where(N > 0, N, 1.0)
         with np.errstate(divide="ignore", invalid="ignore"):
             u.sw = np.where(u.a == 1, p1 / u.E, (1 - p1) / (1 - u.E))
         u.free = np.ones_like(u.sw, dtype=bool)

@@ -35,7 +35,7 @@ _NEEDS = dict(need_ps=True, need_om=True, ps_required=True)
 def _unit_means(u: _adjust.Unit, spec: Spec, want_if: bool):
     W, a, y = u.W, u.a, u.y
     N = W.sum(axis=1)
-    p1 = ((W @ a) / N)[:, None]
+    p1 = (_adjust._wdot(W, a) / N)[:, None]
     psi1 = u.Q1 + np.where(a == 1, (y - u.Q1) * u.sw / p1, 0.0)
     psi0 = u.Q0 + np.where(a == 0, (y - u.Q0) * u.sw / (1.0 - p1), 0.0)
     m1 = np.sum(W * psi1, axis=1) / N

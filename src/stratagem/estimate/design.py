@@ -25,6 +25,8 @@ from dataclasses import dataclass, field
 import numpy as np
 import pandas as pd
 
+from .glm import dot_cols, weighted_gram  # products whose result does not depend on BLAS threads
+
 __all__ = ["Design", "confounder_design", "independent_columns", "independent_from_covariance"]
 
 RANK_TOL = 1e-9  # a column whose unexplained share of variance is below this is redundant
@@ -107,12 +109,13 @@ def _fill(frame: pd.DataFrame, plan: list, order: np.ndarray | None) -> np.ndarr
 def _covariance(x: np.ndarray, w: np.ndarray, total: float) -> np.ndarray:
     """Weighted covariance matrix of the columns of ``x`` (p x p), without copying ``x`` when the
     columns are roughly centred already; a centred copy is used where cancellation would lose digits."""
-    mean = (w @ x) / total
-    raw = (x.T @ x if np.all(w == 1.0) else (x.T * w) @ x) / total
+    x = np.ascontiguousarray(x)
+    mean = dot_cols(x, w) / total
+    raw = weighted_gram(x, w) / total
     gram = raw - np.outer(mean, mean)
     if np.any(np.diag(gram) < 1e-6 * np.diag(raw)):  # a column far from centred: be exact
         xc = x - mean
-        gram = (xc * w[:, None]).T @ xc / total
+        gram = weighted_gram(xc, w) / total
     return gram
 
 

@@ -28,15 +28,76 @@ from __future__ import annotations
 from dataclasses import dataclass
 
 import numpy as np
-from scipy.special import expit
 
-__all__ = ["GLMFit", "fit", "linear_predictor", "information", "projection", "logistic", "weighted_gram"]
+__all__ = [
+    "GLMFit", "fit", "linear_predictor", "information", "projection", "logistic", "weighted_gram",
+    "dot_rows", "dot_cols",
+]
 
 FAMILIES = ("binomial", "gaussian")
 PAIR_BYTES = 256 * 2**20  # largest (n x p(p+1)/2) table of column products kept for batched fits
 SEPARATION_ETA = 15.0
-CHUNK_ROWS = 4096  # rows per block of a single fit's Newton step (a block of X stays in cache)
+CHUNK_ROWS = 8192  # rows per block of a single fit's Newton step (a block of X stays in cache)
 EXP_LIMIT = 700.0  # exp(700) is finite; logistic(-700) ~ 1e-304, below any meaningful risk
+# Matrix products are cut into pieces small enough that OpenBLAS runs each on one thread (it threads
+# a gemm only above m*n*k = 4 * 65536 and a gemv above m*n = 4 * 2304), and the pieces are summed in
+# a fixed order: results do not depend on the number of BLAS threads, and small products do not pay
+# for waking threads (very slow on a busy machine).
+GEMM_SERIAL = 200_000
+GEMV_SERIAL = 8_000
+BLOCKS_AT_ONCE = 32  # pieces multiplied per numpy call in dot_cols (bounds its temporary)
+REP_BLOCK = 64  # most replicate models updated together in a batched fit
+
+
+def _block_rows(k: int, c: int) -> int:
+    limit = GEMV_SERIAL if c == 1 else GEMM_SERIAL
+    return max(1, limit // max(k * c, 1))
+
+
+def dot_rows(A: np.ndarray, B: np.ndarray) -> np.ndarray:
+    """``A @ B`` for A (n, k) and B (k, c) or (k,), in row blocks: shape (n, c) or (n,).
+
+    Each block is one small (single-threaded) BLAS call, so the result does not depend on the
+    number of BLAS threads. ``A`` should be C-contiguous (its row blocks are then views).
+    """
+    n, k = A.shape
+    vec = B.ndim == 1
+    c = 1 if vec else B.shape[1]
+    rows = _block_rows(k, c)
+    out = np.empty((n,) if vec else (n, c))
+    nb = n // rows
+    m = nb * rows
+    if nb:
+        shape = (nb, rows) if vec else (nb, rows, c)
+        np.matmul(A[:m].reshape(nb, rows, k), B, out=out[:m].reshape(shape))
+    if m < n:
+        out[m:] = A[m:] @ B
+    return out
+
+
+def dot_cols(A: np.ndarray, B: np.ndarray) -> np.ndarray:
+    """``A.T @ B`` for A (n, k) and B (n, c) or (n,): shape (k, c) or (k,).
+
+    The sum over rows is taken over blocks of rows, each one small (single-threaded) BLAS call,
+    added in a fixed order: the result does not depend on the number of BLAS threads.
+    """
+    n, k = A.shape
+    vec = B.ndim == 1
+    c = 1 if vec else B.shape[1]
+    rows = _block_rows(k, c)
+    out = np.zeros((k,) if vec else (k, c))
+    nb = n // rows
+    step = rows * BLOCKS_AT_ONCE
+    for lo in range(0, nb * rows, step):
+        hi = min(nb * rows, lo + step)
+        nb_here = (hi - lo) // rows
+        Ab = A[lo:hi].reshape(nb_here, rows, k).transpose(0, 2, 1)
+        part = np.matmul(Ab, B[lo:hi].reshape(nb_here, rows, c)).sum(axis=0)
+        out += part[:, 0] if vec else part
+    m = nb * rows
+    if m < n:
+        out += A[m:].T @ B[m:]
+    return out
 
 
 def logistic(eta: np.ndarray, out_rest: bool = False):
@@ -60,8 +121,8 @@ def logistic(eta: np.ndarray, out_rest: bool = False):
 def weighted_gram(X: np.ndarray, s: np.ndarray, extra: np.ndarray | None = None) -> np.ndarray:
     """``X' diag(s) X`` (p, p), or ``X' [diag(s) X, extra]`` (p, p + 1) when ``extra`` (n,) is given.
 
-    Computed over blocks of ``CHUNK_ROWS`` rows summed in a fixed order, so no (n, p) temporary is
-    made and the result does not depend on the number of BLAS threads.
+    Computed over blocks of ``CHUNK_ROWS`` rows summed in a fixed order (see :func:`dot_cols`), so
+    no (n, p) temporary is made and the result does not depend on the number of BLAS threads.
     """
     n, p = X.shape
     q = p + (extra is not None)
@@ -73,7 +134,7 @@ def weighted_gram(X: np.ndarray, s: np.ndarray, extra: np.ndarray | None = None)
         np.multiply(Xc, s[lo:hi, None], out=M[:, :p])
         if extra is not None:
             M[:, p] = extra[lo:hi]
-        out += Xc.T @ M
+        out += dot_cols(Xc, M)
     return out
 
 
@@ -92,7 +153,7 @@ def _newton_single(X, y, w, mask, beta, tol, max_iter, y_binary):
         for lo in range(0, n, CHUNK_ROWS):
             hi = min(n, lo + CHUNK_ROWS)
             Xc, wc, B = X[lo:hi], w[lo:hi], buf[: hi - lo]
-            mu, rest = logistic(Xc @ beta, out_rest=True)
+            mu, rest = logistic(dot_rows(Xc, beta), out_rest=True)
             if y_binary:
                 r = np.where(y_one[lo:hi], rest, -mu)
             else:
@@ -103,7 +164,7 @@ def _newton_single(X, y, w, mask, beta, tol, max_iter, y_binary):
             mu *= wc  # w mu (1 - mu)
             np.multiply(Xc, mu[:, None], out=B[:, :p])
             B[:, p] = r
-            HG += Xc.T @ B
+            HG += dot_cols(Xc, B)
         step = _solve(HG[None, :, :p], HG[None, :, p], M)[0]
         new = beta + step
         beta = new
@@ -139,7 +200,8 @@ class GLMFit:
 
 def linear_predictor(X: np.ndarray, beta: np.ndarray) -> np.ndarray:
     """``X @ beta`` for one (p,) or many (B, p) coefficient vectors: shape (n,) or (B, n)."""
-    return beta @ X.T if beta.ndim == 2 else X @ beta
+    X = np.ascontiguousarray(X)
+    return np.ascontiguousarray(dot_rows(X, beta.T).T) if beta.ndim == 2 else dot_rows(X, beta)
 
 
 def _pairs(X: np.ndarray):
@@ -148,21 +210,65 @@ def _pairs(X: np.ndarray):
     return iu, X[:, iu[0]] * X[:, iu[1]]
 
 
-def _crossprod(X: np.ndarray, S: np.ndarray, pairs) -> np.ndarray:
-    """``X' diag(S[b]) X`` for every row b of S (B, n): shape (B, p, p)."""
-    B = S.shape[0]
+def _crossprod(X: np.ndarray, St: np.ndarray, pairs) -> np.ndarray:
+    """``X' diag(St[:, b]) X`` for every column b of St (n, B): shape (B, p, p)."""
+    B = St.shape[1]
     p = X.shape[1]
     if pairs is None:
         out = np.empty((B, p, p))
         for b in range(B):
-            out[b] = (X * S[b][:, None]).T @ X
+            out[b] = weighted_gram(X, np.ascontiguousarray(St[:, b]))
         return out
     iu, XX = pairs
-    flat = S @ XX  # one large product for all B models (the hot path of the bootstrap)
+    flat = dot_cols(XX, St)  # (q, B): one pass over the column products for all B models
     out = np.empty((B, p, p))
-    out[:, iu[0], iu[1]] = flat
-    out[:, iu[1], iu[0]] = flat
+    out[:, iu[0], iu[1]] = flat.T
+    out[:, iu[1], iu[0]] = flat.T
     return out
+
+
+def _newton_batch(X, y, Wt, M, beta, tol, max_iter, family, pairs):
+    """Newton steps for B models at once, rows by models: ``Wt`` (n, B) weights, ``beta`` (B, p).
+
+    Returns ``(beta, converged, n_iter)``. Models leave the batch when they converge (or fail).
+    """
+    n, p = X.shape
+    B = Wt.shape[1]
+    converged = np.zeros(B, dtype=bool)
+    if family == "gaussian":
+        H = _crossprod(X, Wt, pairs)
+        g = dot_cols(X, Wt * y[:, None]).T
+        converged[:] = True
+        return _solve(H, g, M), converged, 1
+    active = np.ones(B, dtype=bool)
+    y_binary = bool(np.all((y == 0) | (y == 1)))
+    y_one = (y == 1)[:, None]
+    n_iter = 0
+    for it in range(max_iter):
+        idx = np.flatnonzero(active)
+        if idx.size == 0:
+            break
+        n_iter = it + 1
+        b = beta[idx]
+        Wa = Wt if idx.size == B else np.ascontiguousarray(Wt[:, idx])
+        mu, rest = logistic(dot_rows(X, np.ascontiguousarray(b.T)), out_rest=True)  # (n, Ba)
+        if y_binary:
+            r = np.where(y_one, rest, -mu)
+        else:
+            r = y[:, None] * rest - (1.0 - y[:, None]) * mu
+        r *= Wa  # w (y - mu)
+        mu *= rest
+        mu *= Wa  # w mu (1 - mu)
+        H = _crossprod(X, mu, pairs)
+        g = dot_cols(X, r).T
+        step = _solve(H, g, M[idx])
+        new = b + step
+        beta[idx] = new
+        done = np.abs(step).max(axis=1) <= tol * (1.0 + np.abs(new).max(axis=1))
+        bad = ~np.isfinite(new).all(axis=1)
+        converged[idx[done]] = True
+        active[idx[done | bad]] = False
+    return beta, converged, n_iter
 
 
 def _solve(H: np.ndarray, g: np.ndarray, mask: np.ndarray) -> np.ndarray:
@@ -229,7 +335,7 @@ def fit(
     beta = np.zeros((B, p)) if beta0 is None else np.broadcast_to(beta0, (B, p)).astype(float)
     beta = np.where(M, beta, 0.0)
     q = p * (p + 1) // 2
-    pairs = _pairs(X) if B > 1 and n * q * 8 <= PAIR_BYTES else None
+    pairs = _pairs(np.ascontiguousarray(X)) if B > 1 and n * q * 8 <= PAIR_BYTES else None
     converged = np.zeros(B, dtype=bool)
     separated = np.zeros(B, dtype=bool)
     n_iter = 0
@@ -246,43 +352,20 @@ def fit(
         if not conv:
             eta = linear_predictor(X, np.nan_to_num(b))
             separated[0] = bool(((np.abs(eta) > SEPARATION_ETA) & (W[0] > 0)).any()) or not np.isfinite(b).all()
-    elif family == "gaussian":
-        H = _crossprod(X, W, pairs)
-        beta = _solve(H, (W * y) @ X, M)
-        converged[:] = True
-        n_iter = 1
     else:
-        active = np.ones(B, dtype=bool)
-        y_binary = bool(np.all((y == 0) | (y == 1)))
-        y_one = y == 1
-        for it in range(max_iter):
-            idx = np.flatnonzero(active)
-            if idx.size == 0:
-                break
-            n_iter = it + 1
-            b = beta[idx]
-            Wa = W[idx]
-            eta = b @ X.T
-            mu = expit(eta)
-            rest = expit(np.negative(eta, out=eta), out=eta)  # 1 - mu, exact when mu rounds to 1
-            S = mu * rest
-            S *= Wa  # w mu (1 - mu)
-            H = _crossprod(X, S, pairs)
-            r = np.where(y_one, rest, np.negative(mu, out=mu)) if y_binary else y * rest - (1.0 - y) * mu
-            r *= Wa  # w (y - mu)
-            g = r @ X
-            step = _solve(H, g, M[idx])
-            new = b + step
-            beta[idx] = new
-            done = np.abs(step).max(axis=1) <= tol * (1.0 + np.abs(new).max(axis=1))
-            bad = ~np.isfinite(new).all(axis=1)
-            converged[idx[done]] = True
-            active[idx[done | bad]] = False
-        if not converged.all():
-            lost = np.flatnonzero(~converged)
-            eta = linear_predictor(X, np.nan_to_num(beta[lost]))
-            far = (np.abs(eta) > SEPARATION_ETA) & (W[lost] > 0)
-            separated[lost] = far.any(axis=1) | ~np.isfinite(beta[lost]).all(axis=1)
+        X = np.ascontiguousarray(X)
+        for lo in range(0, B, REP_BLOCK):  # groups of models, so each product piece stays small
+            hi = min(B, lo + REP_BLOCK)
+            Wt = np.ascontiguousarray(W[lo:hi].T)
+            b, conv, it = _newton_batch(X, y, Wt, M[lo:hi], beta[lo:hi].copy(), tol, max_iter, family, pairs)
+            beta[lo:hi] = b
+            converged[lo:hi] = conv
+            n_iter = max(n_iter, it)
+            lost = np.flatnonzero(~conv)
+            if lost.size:
+                eta = dot_rows(X, np.ascontiguousarray(np.nan_to_num(b[lost]).T))  # (n, L)
+                far = ((np.abs(eta) > SEPARATION_ETA) & (Wt[:, lost] > 0)).any(axis=0)
+                separated[lo + lost] = far | ~np.isfinite(b[lost]).all(axis=1)
     if single:
         return GLMFit(beta[0], converged[0], separated[0], n_iter, M[0])
     return GLMFit(beta, converged, separated, n_iter, M)
@@ -307,4 +390,4 @@ def projection(
     info = information(X, w, v, mask)
     c = np.zeros(X.shape[1])
     c[mask] = np.linalg.lstsq(info, D[mask], rcond=None)[0]
-    return (X @ c) * resid
+    return dot_rows(np.ascontiguousarray(X), c) * resid

@@ -44,8 +44,8 @@ def _unit_means(u: _adjust.Unit, spec: Spec, want_if: bool):
     d1 = W * a * sw
     d0 = W * (1.0 - a) * sw
     with np.errstate(invalid="ignore", divide="ignore"):
-        m1 = (d1 @ y) / d1.sum(axis=1)
-        m0 = (d0 @ y) / d0.sum(axis=1)
+        m1 = _adjust._wdot(d1, y) / d1.sum(axis=1)
+        m0 = _adjust._wdot(d0, y) / d0.sum(axis=1)
     if not want_if:
         return m1, m0, None, None
     w, s, e, free = W[0], sw[0], u.E[0], u.free[0]
@@ -53,11 +53,11 @@ def _unit_means(u: _adjust.Unit, spec: Spec, want_if: bool):
     v, r = e * (1.0 - e), a - e
     # exposed: g1 = a sw (y - m1); d sw / d beta = -sw (1 - e) z where the weight was not truncated
     c1 = d1[0].sum() / N
-    G1 = (w * a * (y - m1[0]) * (-s * (1.0 - e)) * free) @ u.Z / N
+    G1 = glm.dot_cols(u.Z, w * a * (y - m1[0]) * (-s * (1.0 - e)) * free) / N
     if1 = (a * s * (y - m1[0]) + glm.projection(u.Z, w, v, r, u.ps_mask, G1)) / c1
     # unexposed: g0 = (1 - a) sw (y - m0); d sw / d beta = sw e z
     c0 = d0[0].sum() / N
-    G0 = (w * (1.0 - a) * (y - m0[0]) * (s * e) * free) @ u.Z / N
+    G0 = glm.dot_cols(u.Z, w * (1.0 - a) * (y - m0[0]) * (s * e) * free) / N
     if0 = ((1.0 - a) * s * (y - m0[0]) + glm.projection(u.Z, w, v, r, u.ps_mask, G0)) / c0
     return m1, m0, if1, if0
 

@@ -45,9 +45,9 @@ def _unit_means(u: _adjust.Unit, spec: Spec, want_if: bool):
     else:
         d1 = d0 = v = np.ones_like(w)
     s1, s0 = w * d1, w * d0
-    D1 = s1 @ u.Z / N[0]
+    D1 = glm.dot_cols(u.Z, s1) / N[0]
     D1[-1] = s1.sum() / N[0]  # the exposure column is 1 in every prediction of Q(1, L)
-    D0 = s0 @ u.Z / N[0]
+    D0 = glm.dot_cols(u.Z, s0) / N[0]
     D0[-1] = 0.0  # ... and 0 in every prediction of Q(0, L)
     r = u.y - mu
     if1 = q1 - m1[0] + glm.projection(u.Z, w, v, r, u.mask, D1)
