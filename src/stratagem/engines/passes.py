@@ -92,12 +92,14 @@ def _searchsorted_right(expr: Frag, inner) -> Frag:
 
 
 def _expit(eta: Frag) -> tuple[Frag, Frag]:
-    """``expit(eta)`` and ``1 - expit(eta)`` without overflow (exp of a non-positive number only)."""
-    mu = fmt("(CASE WHEN {} >= 0 THEN 1.0 / (1.0 + EXP(-{})) ELSE EXP({}) / (1.0 + EXP({})) END)",
-             eta, eta, eta, eta)
-    rest = fmt("(CASE WHEN {} >= 0 THEN EXP(-{}) / (1.0 + EXP(-{})) ELSE 1.0 / (1.0 + EXP({})) END)",
-               eta, eta, eta, eta)
-    return mu, rest
+    """``expit(eta) = 1 / (1 + exp(-eta))`` and ``1 - expit(eta) = 1 / (1 + exp(eta))``.
+
+    Each is accurate to a few units in the last place for every ``eta``: an overflowing ``exp`` gives
+    infinity in both engines, hence exactly 0. No ``CASE``: DuckDB merges the layered projections
+    and cannot share a conditional expression between the many sums that use it, which made each
+    Newton scan several times slower.
+    """
+    return fmt("(1.0 / (1.0 + EXP(-{})))", eta), fmt("(1.0 / (1.0 + EXP({})))", eta)
 
 
 def _select(items: list[tuple[str, Frag]]) -> Frag:
@@ -186,8 +188,16 @@ def inspect(src, spec: Spec, *, confounder_levels: bool) -> Inspection:
         items.append(("w_min", fmt("MIN({})", w)))
     numeric_names = [c for c in list(spec.strata) + list(spec.confounders)
                      if src.kinds[c] in ("numeric", "float")]
+    # distinct counts (a costly hash per column) only where they decide something: modifiers,
+    # text confounders, and numeric confounders of Mantel-Haenszel (binned when they have many values)
+    counted = set(spec.strata) | {c for c in spec.confounders
+                                  if c not in numeric_names or spec.method == "mantel-haenszel"}
     for i, c in enumerate(list(spec.strata) + list(spec.confounders)):
-        items.append((f"d{i}", fmt("COUNT(DISTINCT {})", _col(src, c))))
+        if c in counted and spec.counts and c in numeric_names and c not in spec.strata:
+            # as mantel_haenszel: values of rows with a positive frequency
+            items.append((f"d{i}", fmt("COUNT(DISTINCT CASE WHEN {} > 0 THEN {} END)", w, _col(src, c))))
+        elif c in counted:
+            items.append((f"d{i}", fmt("COUNT(DISTINCT {})", _col(src, c))))
         if c in numeric_names:
             items += [(f"lo{i}", fmt("MIN({})", _as_double(src, c))), (f"hi{i}", fmt("MAX({})", _as_double(src, c)))]
     stats = src.run(fmt("SELECT {} FROM {} WHERE {}", _select(items), src.table, where)).iloc[0]
@@ -226,7 +236,8 @@ def inspect(src, spec: Spec, *, confounder_levels: bool) -> Inspection:
     centre = float(stats["swy"]) / sw if sw > 0 else 0.0
     distinct, ranges = {}, {}
     for i, c in enumerate(list(spec.strata) + list(spec.confounders)):
-        distinct[c] = int(stats[f"d{i}"])
+        if c in counted:
+            distinct[c] = int(stats[f"d{i}"])
         if c in numeric_names:
             ranges[c] = (float(stats[f"lo{i}"]), float(stats[f"hi{i}"]))
     keys = [_modifier_key(src, spec, name, where, distinct[name], ranges.get(name)) for name in spec.strata]
@@ -289,9 +300,8 @@ def _mh_keys(src, spec: Spec, ins: Inspection):
     out, notes = [], []
     for name in spec.confounders:
         if src.kinds[name] in ("numeric", "float") and ins.distinct[name] > LEVEL_THRESHOLD:
-            # as mantel_haenszel does: quantiles over rows (not weighted), cut points between them
-            q = _quantile_edges(src, spec.replace(counts=None), name, ins.where,
-                                np.linspace(0, 1, CONFOUNDER_BINS + 1))
+            # as mantel_haenszel does: quantiles of the rows weighted by their frequencies
+            q = _quantile_edges(src, spec, name, ins.where, np.linspace(0, 1, CONFOUNDER_BINS + 1))
             inner = np.unique(q)[1:-1]
             out.append((name, _searchsorted_right(_as_double(src, name), inner)))
             notes.append(binning_note(name, ins.distinct[name], inner))
@@ -370,11 +380,12 @@ class _Design:
     exprs: list  # raw design column expressions
     names: list
     notes: list
+    shifts: list  # a value inside each column's range (mid-range; 0 for indicators), for stable sums
 
 
 def _design(src, spec: Spec, ins: Inspection) -> _Design:
     """Design columns of the confounders, coded as :func:`stratagem.estimate.design.confounder_design`."""
-    exprs, names, notes = [], [], []
+    exprs, names, notes, shifts = [], [], [], []
     for col in spec.confounders:
         if src.kinds[col] in ("numeric", "float"):
             lo, hi = ins.ranges[col]
@@ -383,6 +394,7 @@ def _design(src, spec: Spec, ins: Inspection) -> _Design:
                 continue
             exprs.append(_as_double(src, col))
             names.append(str(col))
+            shifts.append((lo + hi) / 2.0)
             continue
         found = _distinct(src, col, ins.where)
         if len(found) > MAX_LEVELS_FETCHED:
@@ -397,18 +409,56 @@ def _design(src, spec: Spec, ins: Inspection) -> _Design:
         for level in levels[1:]:
             exprs.append(fmt("(CASE WHEN {} = {} THEN 1.0 ELSE 0.0 END)", _col(src, col), value(level)))
             names.append(f"{col}={level}")
-    return _Design(exprs, names, notes)
+            shifts.append(0.0)
+    return _Design(exprs, names, notes, shifts)
 
 
-def _per_stratum(values: np.ndarray, s: Frag) -> Frag:
-    """``CASE s WHEN 0 THEN v0 WHEN 1 THEN v1 ... END`` with the values as parameters."""
-    if len(values) == 1:
-        return value(float(values[0]))
-    parts = [fmt("WHEN {} THEN {}", value(i), value(float(v))) for i, v in enumerate(values)]
-    return fmt("(CASE {} END)", fmt("{} ", s) + join(" ", parts))
+class StratumTable:
+    """Per-stratum values for one query, joined to the rows on the modifier keys.
+
+    A coefficient or constant that differs by stratum is written into a small inline table
+    (``VALUES`` with one row per combination of modifier levels: the keys, the stratum number ``s``
+    and one column per per-stratum vector, all as bound parameters) and joined to the rows, so each
+    row reads its stratum's values by one hash join instead of evaluating one ``CASE`` over the strata
+    per coefficient. With no modifiers there is one stratum and each value is a plain parameter.
+    """
+
+    def __init__(self, keys_to_stratum: dict, n_keys: int):
+        self.keys = keys_to_stratum
+        self.n_keys = n_keys
+        self.columns: list = []
+
+    def column(self, values) -> Frag:
+        """The column holding ``values[s]`` on each row (identical vectors share a column)."""
+        values = np.asarray(values, dtype=float)
+        if self.n_keys == 0:
+            return value(float(values[0]))
+        for i, known in enumerate(self.columns):
+            if np.array_equal(known, values, equal_nan=True):
+                return raw(f"sv{i}")
+        self.columns.append(values)
+        return raw(f"sv{len(self.columns) - 1}")
+
+    def joined(self, body: Frag) -> Frag:
+        """``body`` (rows with key columns ``k0, k1, ...``) joined to the table: adds ``s`` and ``sv*``."""
+        if self.n_keys == 0:
+            return body
+        rows = []
+        for key, s in self.keys.items():
+            vals = [value(v) for v in key] + [value(int(s))] + [value(float(c[s])) for c in self.columns]
+            rows.append(fmt("({})", join(", ", vals)))
+        names = [f"sk{i}" for i in range(self.n_keys)] + ["s"] + [f"sv{i}" for i in range(len(self.columns))]
+        cond = " AND ".join(f"t.k{i} = st.sk{i}" for i in range(self.n_keys))
+        return fmt("SELECT * FROM ({}) t JOIN (VALUES {}) AS st(" + ", ".join(names) + ") ON " + cond,
+                   body, join(", ", rows))
 
 
-def _dot(beta: np.ndarray, z: list[Frag], s: Frag) -> Frag:
+def _per_stratum(values: np.ndarray, s: StratumTable) -> Frag:
+    """The per-stratum ``values`` as a column of the query's :class:`StratumTable`."""
+    return s.column(values)
+
+
+def _dot(beta: np.ndarray, z: list[Frag], s: StratumTable) -> Frag:
     """``sum_j beta[s, j] z_j`` for per-stratum coefficients ``beta`` (K, p); zero columns skipped."""
     terms = []
     for j, zj in enumerate(z):
@@ -418,11 +468,16 @@ def _dot(beta: np.ndarray, z: list[Frag], s: Frag) -> Frag:
     return sql.total(terms)
 
 
-def _grouped(src, inner: list, outer: list, where: Frag, k: int, layers=()) -> pd.DataFrame:
+def _grouped(src, inner: list, outer: list, where: Frag, k: int, layers=(), st: StratumTable | None = None
+             ) -> pd.DataFrame:
     """One scan: ``SELECT s, <outer aggregates> FROM (...) GROUP BY s``, one row per stratum (strata
-    without rows get zeros). ``inner`` are the row columns; each of ``layers`` adds columns computed
-    from the previous ones (``SELECT *, ...``), so a quantity used many times is written once."""
+    without rows get zeros). ``inner`` are the row columns (the modifier keys ``k0, k1, ...``, or
+    ``s = 0`` without modifiers); ``st`` joins the stratum number and the per-stratum values; each of
+    ``layers`` adds columns computed from the previous ones (``SELECT *, ...``), so a quantity used
+    many times is written once."""
     body = fmt("SELECT {} FROM {} WHERE {}", _select(inner), src.table, where)
+    if st is not None:
+        body = st.joined(body)
     for i, layer in enumerate(layers):
         if layer:
             body = fmt("SELECT *, {} FROM (" + "{}" + f") l{i}", _select(layer), body)
@@ -453,51 +508,52 @@ def _sym(flat: np.ndarray, p: int) -> np.ndarray:
 
 
 def model_means(src, spec: Spec, ins: Inspection, prep, keys_to_stratum: dict, *, name: str,
-                tol: float = 1e-10, max_iter: int = 60) -> GroupMeans:
+                tol: float = 1e-6, max_iter: int = 60) -> GroupMeans:
     """Standardization, IPW or AIPW per stratum, fitted and averaged in the engine.
 
     Equal to :mod:`stratagem.estimate._adjust` on the same rows (same models, masks, Newton steps
-    from zero, influence functions), with every sum over rows done by the engine.
+    from zero, influence functions), with every sum over rows done by the engine. Newton stops after
+    a step no larger than ``tol * (1 + max|beta|)``: near the solution Newton's error is squared at
+    every step, so after a step of 1e-6 the coefficients are within about 1e-12 of the in-memory fit
+    (which takes one more step to confirm 1e-10), and each step saved is a scan of every row saved.
     """
     need_ps_req = name in ("ipw", "aipw")
     need_om = name in ("standardization", "aipw")
     k = prep.n_strata
-    # row expressions
+    # row expressions: the modifier keys (joined to a table of per-stratum values in every scan)
     key_exprs = [expr for _, expr, _, _ in ins.keys]
-    if key_exprs:
-        branches = []
-        for key, s in keys_to_stratum.items():
-            cond = join(" AND ", [fmt("{} = {}", e, value(v)) for e, v in zip(key_exprs, key)])
-            branches.append(fmt("WHEN {} THEN {}", cond, value(int(s))))
-        s_expr = fmt("(CASE {} END)", join(" ", branches))
-    else:
-        s_expr = raw("0")
+    n_keys = len(key_exprs)
+
+    def table() -> StratumTable:
+        return StratumTable(keys_to_stratum, n_keys)
+
     a_expr = _exposure_expr(src, spec, prep)
     y_expr = _as_double(src, spec.outcome)
     w_expr = _as_double(src, spec.counts) if spec.counts else raw("1.0")
     des = _design(src, spec, ins)
     p = len(des.exprs)
-    base = [("s", s_expr), ("a", a_expr), ("y", y_expr), ("w", w_expr)]
+    base = [(f"k{i}", e) for i, e in enumerate(key_exprs)] if n_keys else [("s", raw("0"))]
+    base += [("a", a_expr), ("y", y_expr), ("w", w_expr)]
     base += [(f"x{j}", e) for j, e in enumerate(des.exprs)]
-    # moments: means, then centred covariance per stratum
+    # moments in one scan: sums of the shifted columns u = x - shift and of their products per stratum
+    # (the shift is a value inside each column's range, so the centred sums lose no precision)
+    shift = np.asarray(des.shifts, dtype=float)
+    u = [fmt("(x" + str(j) + " - {})", value(shift[j])) for j in range(p)]
+    iu = np.triu_indices(p)
     outer = [("sw", raw("SUM(w)")), ("swa", raw("SUM(w * a)")), ("swy", raw("SUM(w * y)")),
              ("npos", raw("SUM(CASE WHEN w > 0 THEN 1 ELSE 0 END)")),
              ("ylo", raw("MIN(CASE WHEN w > 0 THEN y END)")), ("yhi", raw("MAX(CASE WHEN w > 0 THEN y END)"))]
-    outer += [(f"mx{j}", raw(f"SUM(w * x{j})")) for j in range(p)]
-    m = _grouped(src, base, outer, ins.where, k)
+    outer += [(f"d{j}", fmt("SUM(w * {})", u[j])) for j in range(p)]
+    outer += [(f"c{i}", fmt("SUM(w * {} * {})", u[a], u[b])) for i, (a, b) in enumerate(zip(*iu))]
+    m = _grouped(src, base, outer, ins.where, k, st=table())
     N = m["sw"].to_numpy()
     total_w = N.sum()
-    mean = np.array([m[f"mx{j}"].sum() / total_w for j in range(p)])
     notes = list(des.notes)
     cov_s = np.zeros((k, p, p))
     if p:
-        centred = [fmt("(x" + str(j) + " - {})", value(mean[j])) for j in range(p)]
-        iu = np.triu_indices(p)
-        outer = [(f"c{i}", fmt("SUM(w * {} * {})", centred[a], centred[b])) for i, (a, b) in enumerate(zip(*iu))]
-        outer += [(f"d{j}", fmt("SUM(w * {})", centred[j])) for j in range(p)]
-        c = _grouped(src, base, outer, ins.where, k)
-        sxx = _sym(c[[f"c{i}" for i in range(len(iu[0]))]].to_numpy(), p)
-        sx = c[[f"d{j}" for j in range(p)]].to_numpy()
+        sxx = _sym(m[[f"c{i}" for i in range(len(iu[0]))]].to_numpy(), p)
+        sx = m[[f"d{j}" for j in range(p)]].to_numpy()
+        mean = shift + sx.sum(axis=0) / total_w
         with np.errstate(divide="ignore", invalid="ignore"):
             cov_s = (sxx - sx[:, :, None] * sx[:, None, :] / np.where(N > 0, N, 1.0)[:, None, None]) \
                 / np.where(N > 0, N, 1.0)[:, None, None]
@@ -558,7 +614,7 @@ def model_means(src, spec: Spec, ins: Inspection, prep, keys_to_stratum: dict, *
             st = OK
         status.append(st)
     okmask = np.array([st == OK for st in status])
-    base = (base, zdef)
+    base = (base, zdef, table)  # row columns, standardised design columns, per-stratum table maker
     fit = _irls(src, base, ins, Z, masks, okmask, binary=ins.binary, need_om=need_om, tol=tol, max_iter=max_iter)
     for s in range(k):
         if status[s] != OK:
@@ -570,7 +626,8 @@ def model_means(src, spec: Spec, ins: Inspection, prep, keys_to_stratum: dict, *
         elif need_om and not fit.ok_om[s]:
             status[s] = "outcome model did not converge" + (" (separation)" if fit.sep_om[s] else "")
     okmask = np.array([st == OK for st in status])
-    m1, m0, v11, v00, v10, diag = _means_and_variances(src, base, ins, Z, masks, fit, okmask, N, n1, name)
+    m1, m0, v11, v00, v10, diag = _means_and_variances(src, base, ins, Z, masks, fit, okmask, N, n1, name,
+                                                       pilot=m["swy"].to_numpy() / np.where(N > 0, N, 1.0))
     G = k + 1
     status.append(OK)
     if okmask.all():
@@ -622,8 +679,8 @@ def _irls(src, base, ins, Z, masks, okmask, *, binary, need_om, tol, max_iter) -
     conv = {"ps": np.zeros(k, dtype=bool), "om": np.zeros(k, dtype=bool)}
     far = {"ps": np.zeros(k), "om": np.zeros(k)}
     fam_om = "binomial" if binary else "gaussian"
-    S = raw("s")
     for _ in range(max_iter):
+        S = base[2]()
         todo = [t for t in ("ps", "om") if active[t].any()]
         if not todo:
             break
@@ -639,7 +696,7 @@ def _irls(src, base, ins, Z, masks, okmask, *, binary, need_om, tol, max_iter) -
                 links += [(f"mu_{t}", mu), (f"rest_{t}", rest)]
                 weights += [(f"S_{t}", raw(f"w * mu_{t} * rest_{t}")), (f"r_{t}", fmt("w * ({} - mu_" + t + ")", target))]
             outer += _model_aggs(t, raw(f"S_{t}"), raw(f"r_{t}"), Z, eta)
-        got = _grouped(src, base[0], outer, ins.where, k, layers=[base[1], etas, links, weights])
+        got = _grouped(src, base[0], outer, ins.where, k, layers=[base[1], etas, links, weights], st=S)
         for t in todo:
             nq = P * (P + 1) // 2
             H = _sym(got[[f"{t}h{i}" for i in range(nq)]].to_numpy(), P)
@@ -660,11 +717,15 @@ def _irls(src, base, ins, Z, masks, okmask, *, binary, need_om, tol, max_iter) -
     return Fitted(beta["ps"], beta["om"], conv["ps"], conv["om"], sep["ps"], sep["om"])
 
 
-def _means_and_variances(src, base, ins, Z, masks, fit, okmask, N, n1, name):
-    """Two scans: potential-outcome means (with what the influence functions need), then the sums of
-    squares and products of the influence functions per stratum."""
+def _means_and_variances(src, base, ins, Z, masks, fit, okmask, N, n1, name, pilot):
+    """Potential-outcome means and the sums of squares and products of the influence functions per
+    stratum. Standardization and IPW take two scans (the influence functions need constants solved
+    from the first); AIPW takes one: its influence functions are ``psi - m``, so the sums of ``psi - c``
+    and of its squares and products, for a per-stratum constant ``c`` near ``m`` (``pilot``, the
+    stratum's outcome mean, which keeps the sums of squares free of cancellation), give ``m`` and the
+    variances at once."""
     k, P = masks.shape
-    S = raw("s")
+    S = base[2]()  # one table for both scans (the second adds its own columns)
     binary = ins.binary
     ps_mask = masks.copy()
     ps_mask[:, -1] = False
@@ -718,8 +779,11 @@ def _means_and_variances(src, base, ins, Z, masks, fit, okmask, N, n1, name):
                       (f"A0y_{j}", raw(f"SUM(w * (1.0 - a) * sw * e * y * {zt[j]})"))]
         outer += [(f"I{i}", raw(f"SUM(w * e * ome * {zt[a]} * {zt[b]})")) for i, (a, b) in enumerate(zip(*iu))]
     else:
-        outer += [("s1", raw("SUM(w * psi1)")), ("s0", raw("SUM(w * psi0)"))]
-    got = _grouped(src, base[0], outer, ins.where, k, layers=layers)
+        c1, c0 = _per_stratum(pilot, S), _per_stratum(pilot, S)
+        derived += [("g1", fmt("(psi1 - {})", c1)), ("g0", fmt("(psi0 - {})", c0))]
+        outer += [("s1", raw("SUM(w * g1)")), ("s0", raw("SUM(w * g0)")), ("g11", raw("SUM(w * g1 * g1)")),
+                  ("g00", raw("SUM(w * g0 * g0)")), ("g10", raw("SUM(w * g1 * g0)"))]
+    got = _grouped(src, base[0], outer, ins.where, k, layers=layers, st=S)
     G = k + 1
     m1, m0, v11, v00, v10 = (np.full(G, np.nan) for _ in range(5))
     col = lambda prefix, n_: got[[f"{prefix}{j}" for j in range(n_)]].to_numpy()  # noqa: E731
@@ -757,13 +821,16 @@ def _means_and_variances(src, base, ins, Z, masks, fit, okmask, N, n1, name):
                            _per_stratum(cc1, S))),
                 ("f0", fmt("(((1.0 - a) * sw * (y - {}) + {} * (a - e)) / {})", _per_stratum(m0k, S),
                            _dot(k0, Z, S), _per_stratum(cc0, S)))]
-    else:
-        m1[:k], m0[:k] = got["s1"] / safeN, got["s0"] / safeN
-        fdef = [("f1", fmt("(psi1 - {})", _per_stratum(np.nan_to_num(m1[:k]), S))),
-                ("f0", fmt("(psi0 - {})", _per_stratum(np.nan_to_num(m0[:k]), S)))]
-    outer = [("f1f1", raw("SUM(w * f1 * f1)")), ("f0f0", raw("SUM(w * f0 * f0)")),
-             ("f1f0", raw("SUM(w * f1 * f0)")), ("f1", raw("SUM(w * f1)")), ("f0", raw("SUM(w * f0)"))]
-    var = _grouped(src, base[0], outer, ins.where, k, layers=layers + [fdef])
+    else:  # AIPW: everything from the one scan
+        G1, G0 = got["s1"].to_numpy(), got["s0"].to_numpy()
+        m1[:k], m0[:k] = pilot + G1 / safeN, pilot + G0 / safeN
+        var = pd.DataFrame({"f1f1": got["g11"] - G1 * G1 / safeN, "f0f0": got["g00"] - G0 * G0 / safeN,
+                            "f1f0": got["g10"] - G1 * G0 / safeN, "f1": 0.0, "f0": 0.0})
+        fdef = None
+    if fdef is not None:
+        outer = [("f1f1", raw("SUM(w * f1 * f1)")), ("f0f0", raw("SUM(w * f0 * f0)")),
+                 ("f1f0", raw("SUM(w * f1 * f0)")), ("f1", raw("SUM(w * f1)")), ("f0", raw("SUM(w * f0)"))]
+        var = _grouped(src, base[0], outer, ins.where, k, layers=layers + [fdef], st=S)
     for s in range(k):
         if not okmask[s]:
             m1[s] = m0[s] = np.nan
