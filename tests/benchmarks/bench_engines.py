@@ -1,6 +1,7 @@
 """Benchmark of the engines: crude and Mantel-Haenszel across 12 strata and AIPW with 10 confounders
-on a generated Parquet file (written by DuckDB in a temporary folder, deleted after), PySpark local
-mode on the same file, the peak resident memory of this Python process, and the cost per 10x rows.
+on a generated Parquet file (written by DuckDB in a child process, in a temporary folder, deleted
+after), PySpark local mode on the same file, the peak resident memory of this Python process (which
+only analyses: the writer's memory is the child's), and the cost per 10x rows.
 
 Run:  python tests/benchmarks/bench_engines.py [--rows 1e6 1e7 1e8] [--spark-rows 1e7] [--no-aipw]
 Figures are printed, never asserted (machines differ).
@@ -9,8 +10,11 @@ Figures are printed, never asserted (machines differ).
 from __future__ import annotations
 
 import argparse
+import os
 import resource
 import shutil
+import subprocess
+import sys
 import tempfile
 import time
 from pathlib import Path
@@ -28,6 +32,7 @@ def write_parquet(path: Path, rows: int) -> None:
 
     con = duckdb.connect()
     con.execute("SET threads = 2")
+    con.execute("SET enable_progress_bar = false")
     numeric = ", ".join(f"(hash(i * 10 + {j}) % 2000000) / 1000000.0 - 1.0 AS c{j}" for j in range(8))
     con.execute(f"""
         COPY (
@@ -42,6 +47,13 @@ def write_parquet(path: Path, rows: int) -> None:
         ) TO '{path}' (FORMAT parquet)
     """)
     con.close()
+
+
+def write_in_child(path: Path, rows: int) -> None:
+    """:func:`write_parquet` in a child process, so its memory is not counted as the analyser's."""
+    code = "import sys; sys.path.insert(0, sys.argv[1]); import bench_engines as b; b.write_parquet(sys.argv[2], int(sys.argv[3]))"
+    subprocess.run([sys.executable, "-c", code, os.path.dirname(os.path.abspath(__file__)), str(path), str(rows)],
+                   check=True)
 
 
 def peak_rss_mib() -> float:
@@ -70,7 +82,7 @@ def main() -> None:
         for rows in map(int, args.rows):
             path = tmp / f"rows_{rows}.parquet"
             t = time.perf_counter()
-            write_parquet(path, rows)
+            write_in_child(path, rows)
             print(f"{rows:,} rows: Parquet written in {time.perf_counter() - t:.1f} s "
                   f"({path.stat().st_size / 2**20:.0f} MiB)", flush=True)
             for method, extra in (("crude", {}), ("mantel-haenszel", {"confounders": ("c8", "c9")}),

@@ -9,6 +9,7 @@ identifiers, ``?`` parameters) and run with ``connection.execute(sql, params)``.
 from __future__ import annotations
 
 import itertools
+import os
 from pathlib import Path
 
 import pandas as pd
@@ -16,7 +17,19 @@ import pandas as pd
 from . import sql
 from .source import Source
 
-__all__ = ["DuckDBSource", "is_duckdb", "from_duckdb"]
+__all__ = ["DuckDBSource", "is_duckdb", "from_duckdb", "PARQUET_CONNECTION"]
+
+#: Settings of the connections stratagem opens itself (for Parquet paths): DuckDB's own memory
+#: (buffers, hash tables) is capped so the Python process stays well under 2 GiB while it streams a
+#: file of any size (DuckDB spills to a temporary folder beyond it), one thread per core, and rows need
+#: not keep their file order (aggregates do not depend on it, and keeping order costs memory).
+#: Change the dict before calling :func:`stratagem.analyze` to use other values; a relation the user
+#: passes keeps the settings of its own connection.
+PARQUET_CONNECTION = {
+    "memory_limit": "1GB",
+    "threads": max(1, os.cpu_count() or 1),
+    "preserve_insertion_order": False,
+}
 
 _names = itertools.count()
 _NUMERIC = ("TINYINT", "SMALLINT", "INTEGER", "BIGINT", "HUGEINT", "UTINYINT", "USMALLINT",
@@ -69,7 +82,7 @@ def from_duckdb(data) -> DuckDBSource:
     import duckdb
 
     if isinstance(data, (str, Path)):
-        con = duckdb.connect()
+        con = duckdb.connect(config=dict(PARQUET_CONNECTION))
         return DuckDBSource(con, con.read_parquet(str(data)))
     con = getattr(data, "_con", None)  # the relation's own connection, where its view must live
     if con is None:  # pragma: no cover - relations of other duckdb builds
