@@ -83,7 +83,9 @@ def test_model_methods_equal_pandas(demo, rel, method):
         assert het_b.loc[test, "statistic"] == pytest.approx(het_a.loc[test, "statistic"], rel=1e-6)
     assert np.isnan(het_b.loc["interaction_lr", "statistic"])
     checks = b.diagnostics
-    assert {"n", "propensity min", "propensity max", "rows scanned"} <= set(checks["check"])
+    assert {"n", "propensity min", "propensity max", "rows scanned in DuckDB (the data stays there)",
+            "full scans in DuckDB"} <= set(checks["check"])
+    assert (checks.loc[checks["check"] == "full scans in DuckDB", "value"] == b.extra["engine"]["scans"]).all()
     if method != "standardization":  # weight checks equal the in-memory ones
         for check in ("largest weight", "effective sample size", "propensity min", "propensity max"):
             x = a.diagnostics[a.diagnostics["check"] == check].set_index(["stratum", "arm"])["value"]

@@ -36,7 +36,7 @@ from . import passes
 from .duckdb_engine import from_duckdb, is_duckdb
 from .spark_engine import SparkSource, is_spark
 
-__all__ = ["analyze_engine", "is_engine_input", "source_for"]
+__all__ = ["analyze_engine", "is_engine_input", "source_for", "modifier_summary", "modifier_summaries"]
 
 MODEL_METHODS = ("standardization", "ipw", "aipw")
 
@@ -201,9 +201,10 @@ def _engine_diagnostics(result: Analysis, src, ins) -> pd.DataFrame:
                     extra_rows.append((label, "effective sample size", arm, ess,
                                        f"effective sample size under {ESS_SHARE:.0%} of the {arm} arm's rows: "
                                        "a few rows carry most of the weight" if ess < ESS_SHARE * n_arm else ""))
-    where = (f"data in {src.engine}: {src.scans} full scan(s) of {ins.n_input:,} rows; balance (SMD) "
-             "checks are computed only for tables in memory")
-    extra_rows.append(("overall", "rows scanned", "all", float(ins.n_input), where))
+    # where the data lives: facts, not warnings (the warning column stays empty)
+    extra_rows.append(("overall", f"rows scanned in {src.engine} (the data stays there)", "all",
+                       float(ins.n_input), ""))
+    extra_rows.append(("overall", f"full scans in {src.engine}", "all", float(src.scans), ""))
     more = pd.DataFrame(extra_rows, columns=DIAGNOSTIC_COLUMNS)
     return pd.concat([keep, more], ignore_index=True)[DIAGNOSTIC_COLUMNS]
 
@@ -220,3 +221,66 @@ def _engine_heterogeneity(result: Analysis, spec: Spec) -> pd.DataFrame:
     het.loc[at, "note"] = ("not computed: the table lives in an engine, where refitting the working model "
                            "with confounders would scan every row again; see interaction_wald")
     return het
+
+
+def modifier_summaries(data: Any, columns, *, max_levels: int = 20) -> dict:
+    """:func:`stratagem.frame.modifier_summary` for several columns of an engine table, in one scan.
+
+    Parameters
+    ----------
+    data : DuckDB relation, Parquet path or Spark DataFrame
+    columns : sequence of str
+    max_levels : int
+        Text columns with more levels than this cannot be modifiers.
+
+    Returns
+    -------
+    dict
+        Column name -> ``{"ok", "kind", "tag", "reason"}``, worded as for a pandas DataFrame. The
+        distinct non-missing values are counted by the engine (one grouped-free aggregate query);
+        whether a column is numeric comes from the table's schema.
+    """
+    from .. import frame as fr_
+    from .sql import fmt, join
+
+    src = data if hasattr(data, "kinds") else source_for(data)
+    columns = list(columns)
+    missing = [c for c in columns if c not in src.columns]
+    if missing:
+        from ..errors import ColumnNotFoundError
+
+        raise ColumnNotFoundError(
+            f"Column {missing[0]!r} is not in the data. Columns are: {src.columns[:12]}. Pass one of these names."
+        )
+    out = {}
+    if not columns:
+        return out
+    items = []
+    for i, c in enumerate(columns):
+        col = src.dialect.ident(c)
+        if src.kinds[c] == "float":  # NaN is missing, as in pandas
+            col = fmt("CASE WHEN NOT {} THEN {} END", src.dialect.isnan(col), col)
+        items.append(fmt("COUNT(DISTINCT {}) AS d" + str(i), col))
+    got = src.run(fmt("SELECT {} FROM {}", join(", ", items), src.table)).iloc[0]
+    for i, c in enumerate(columns):
+        n_distinct = int(got[f"d{i}"])
+        kind = src.kinds[c]
+        numeric = kind in ("numeric", "float")
+        if kind == "other":
+            out[c] = {"ok": False, "kind": "other", "tag": src.types[c],
+                      "reason": f"has the {src.engine} type {src.types[c]}, which cannot form strata"}
+        elif n_distinct < 2:
+            out[c] = {"ok": False, "kind": "constant", "tag": "constant", "reason": "has a single value"}
+        elif numeric and n_distinct > fr_.BIN_THRESHOLD:
+            out[c] = {"ok": True, "kind": "numeric", "tag": f"numeric · {fr_.DEFAULT_BINS} bins", "reason": ""}
+        elif not numeric and kind != "bool" and n_distinct > max_levels:
+            out[c] = {"ok": False, "kind": "many", "tag": f"{n_distinct} levels",
+                      "reason": f"has {n_distinct} levels (more than {max_levels}); group them first"}
+        else:
+            out[c] = {"ok": True, "kind": "levels", "tag": f"{n_distinct} levels", "reason": ""}
+    return out
+
+
+def modifier_summary(data: Any, column: str, *, max_levels: int = 20) -> dict:
+    """:func:`stratagem.frame.modifier_summary` for one column of an engine table (one query)."""
+    return modifier_summaries(data, [column], max_levels=max_levels)[column]

@@ -220,11 +220,17 @@ class Explorer(SnapshotDisplay, anywidget.AnyWidget):
         sync: bool = False,
         **fixed: Any,
     ):
-        if not isinstance(data, pd.DataFrame):
+        from ..engines import is_engine_input, source_for
+
+        in_engine = not isinstance(data, pd.DataFrame) and is_engine_input(data)
+        if not isinstance(data, pd.DataFrame) and not in_engine:
             raise DataError(
-                f"Explorer needs a pandas DataFrame; got {type(data).__name__}. "
-                "Convert it first, e.g. pd.DataFrame(data)."
+                f"Explorer needs a pandas DataFrame, a DuckDB relation, a Parquet path or a Spark "
+                f"DataFrame; got {type(data).__name__}. Convert it first, e.g. pd.DataFrame(data)."
             )
+        # a table in an engine: its columns from the schema; chips summarised by engine queries
+        self._engine = source_for(data) if in_engine else None
+        columns = pd.Index(self._engine.columns) if in_engine else data.columns
         unknown = sorted(set(fixed) - set(_FIXED))
         if unknown:
             raise SpecError(
@@ -241,11 +247,11 @@ class Explorer(SnapshotDisplay, anywidget.AnyWidget):
             exposure=exposure, outcome=outcome, strata=tuple(strata), method=method, measure=measure,
             level=level, interval=interval, n_boot=n_boot, bins=dict(bins or {}), **self._fixed,
         )  # validates every field now, so a mistake raises here with the usual message
-        missing = [c for c in (exposure, outcome, *confounders, *strata) if c not in data.columns]
+        missing = [c for c in (exposure, outcome, *confounders, *strata) if c not in columns]
         if missing:
             raise ColumnNotFoundError(
                 f"Column {missing[0]!r} is not in the data. Columns are: "
-                f"{[str(c) for c in data.columns[:12]]}. Pass one of these names."
+                f"{[str(c) for c in columns[:12]]}. Pass one of these names."
             )
         self._sync_mode = sync
         self._lock = threading.RLock()
@@ -257,7 +263,8 @@ class Explorer(SnapshotDisplay, anywidget.AnyWidget):
         self._transported = None
         self._cache: OrderedDict = OrderedDict()  # (spec JSON, data digest) -> [analysis, payload, target, moved]
         self._cache_lock = threading.Lock()
-        self._cache_size = min(_CACHE_MAX, _CACHE_CELLS // max(len(data), 1))
+        # no reuse for engine tables: their content cannot be hashed without reading every row
+        self._cache_size = 0 if in_engine else min(_CACHE_MAX, _CACHE_CELLS // max(len(data), 1))
         super().__init__(
             strata=list(strata), bins=dict(bins or {}), method=method, measure=measure,
             level=float(level), interval=interval, n_boot=int(n_boot),
@@ -364,18 +371,24 @@ class Explorer(SnapshotDisplay, anywidget.AnyWidget):
     def _describe_variables(self, variables: Sequence[str] | None) -> list[dict]:
         base = self._base
         taken = {base.exposure, base.outcome, base.counts, *(base.potential_outcomes or ())}
+        columns = self._engine.columns if self._engine is not None else self._data.columns
         if variables is None:
-            names = [c for c in self._data.columns if isinstance(c, str) and c not in taken]
+            names = [c for c in columns if isinstance(c, str) and c not in taken]
         else:
             names = list(variables)
-            bad = [c for c in names if c not in self._data.columns]
+            bad = [c for c in names if c not in columns]
             if bad:
                 raise ColumnNotFoundError(
                     f"variables names {bad[0]!r}, which is not in the data; pass column names."
                 )
         out = []
+        if self._engine is not None:  # one engine query counts the values of every column
+            from ..engines import modifier_summaries
+
+            summaries = modifier_summaries(self._engine, names, max_levels=base.max_levels)
         for name in names:
-            info = modifier_summary(self._data, name, max_levels=base.max_levels)
+            info = (summaries[name] if self._engine is not None
+                    else modifier_summary(self._data, name, max_levels=base.max_levels))
             out.append({"name": name, "tag": info["tag"], "ok": bool(info["ok"]),
                         "reason": info["reason"], "kind": info["kind"]})
         return out
