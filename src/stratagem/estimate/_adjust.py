@@ -29,6 +29,8 @@ the exposure column masked.
 
 from __future__ import annotations
 
+import os
+from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass, field
 
 import numpy as np
@@ -43,6 +45,7 @@ from .design import _levels, confounder_design, independent_columns
 
 __all__ = ["Layout", "Unit", "layout", "estimate", "boot_means", "weighted_quantile"]
 
+GATHER_ROWS = 65_536  # rows gathered at once when sorting the design by stratum
 SUB_CELLS = 4_000_000  # replicate-by-row cells handled at once inside a bootstrap block (32 MB)
 
 
@@ -60,6 +63,18 @@ class Layout:
     notes: list
     masks: np.ndarray  # (K, p) outcome-model columns per stratum; propensity drops the last one
     binary: bool
+    pairs: dict = field(default_factory=dict)  # stratum -> column products for batched fits
+
+    def stratum_pairs(self, s: int):
+        """Column products of stratum ``s``'s design (computed once, reused by every bootstrap
+        block and both models); None when the whole table of them would be too large."""
+        lo, hi = self.bounds[s], self.bounds[s + 1]
+        p = self.Z.shape[1]
+        if len(self.order) * p * (p + 1) // 2 * 8 > glm.PAIR_BYTES:
+            return None
+        if s not in self.pairs:
+            self.pairs[s] = glm._pairs(self.Z[lo:hi])
+        return self.pairs[s]
 
 
 @dataclass
@@ -82,6 +97,7 @@ class Unit:
     mu: np.ndarray | None = None  # outcome-model fitted values at the observed exposure
     sw: np.ndarray | None = None  # stabilised, possibly truncated weights
     free: np.ndarray | None = None  # rows whose weight was not truncated
+    pairs: object = None  # column products of Z for batched fits (glm._pairs), if precomputed
     notes: list = field(default_factory=list)
 
     @property
@@ -112,14 +128,17 @@ def layout(prep: Prepared) -> Layout:
     counts = np.bincount(prep.stratum, minlength=k)
     bounds = np.concatenate([[0], np.cumsum(counts)])
     w = prep.w[order]
-    design = confounder_design(prep.confounders, order=order, w=w)
+    design = confounder_design(prep.confounders, w=prep.w)  # rows in the table's order
     n, p = design.matrix.shape
+    names, notes = design.names, list(design.notes)
+    x = design.matrix
+    del design
+    _standardise(x, prep.w)  # in place, on contiguous columns (this matrix is ours)
     Z = np.empty((n, p + 2))
     Z[:, 0] = 1.0
-    Z[:, 1 : p + 1] = design.matrix
-    names, notes = design.names, list(design.notes)
-    del design  # the unstandardised copy is not needed any more
-    _standardise(Z[:, 1 : p + 1], w)
+    for lo in range(0, n, GATHER_ROWS):  # rows sorted by stratum, a block at a time
+        Z[lo : lo + GATHER_ROWS, 1 : p + 1] = x[order[lo : lo + GATHER_ROWS]]
+    del x
     a = prep.a[order]
     Z[:, -1] = a
     masks = np.ones((k, p + 2), dtype=bool)
@@ -206,7 +225,9 @@ def _positivity(levels, w: np.ndarray, a: np.ndarray) -> str:
     return ""
 
 
-BOOT_TOL = 1e-6  # Newton converges quadratically: after a step this small the error is ~1e-12
+WORKERS = min(2, os.cpu_count() or 1)  # threads fitting strata side by side on large problems
+PARALLEL_CELLS = 500_000  # rows x weight vectors from which the strata are fitted in parallel
+BOOT_TOL = 1e-5  # Newton converges quadratically: after a step this small the error is ~1e-10
 
 
 def _fit(u: Unit, need_ps: bool, need_om: bool, start_ps=None, start_om=None, ps_required=True) -> None:
@@ -217,13 +238,14 @@ def _fit(u: Unit, need_ps: bool, need_om: bool, start_ps=None, start_om=None, ps
     n1 = _wdot(u.W, u.a)
     ok &= (n1 > 0) & (u.W.sum(axis=1) - n1 > 0)
     if need_ps:
-        u.ps = glm.fit(u.Z, u.a, u.W, family="binomial", mask=u.ps_mask, beta0=start_ps, tol=tol)
+        u.ps = glm.fit(u.Z, u.a, u.W, family="binomial", mask=u.ps_mask, beta0=start_ps, tol=tol,
+                       pairs=u.pairs)
         u.E = glm.logistic(glm.linear_predictor(u.Z, u.ps.beta))
         if ps_required:
             ok &= u.ps.converged
     if need_om:
         family = "binomial" if u.binary else "gaussian"
-        u.om = glm.fit(u.Z, u.y, u.W, family=family, mask=u.mask, beta0=start_om, tol=tol)
+        u.om = glm.fit(u.Z, u.y, u.W, family=family, mask=u.mask, beta0=start_om, tol=tol, pairs=u.pairs)
         eta = glm.linear_predictor(u.Z, u.om.beta)
         ba = u.om.beta[:, -1:]
         eta1 = eta + ba * (1.0 - u.a)
@@ -315,8 +337,8 @@ def run(prep: Prepared, spec: Spec, W: np.ndarray | None, *, need_ps: bool, need
     lay = start.lay if start is not None else _cached_layout(prep)
     Ws = lay.w[None, :] if W is None else W[:, lay.order]
     levels = _level_codes(prep.confounders, lay.order) if start is None and need_ps and ps_required else None
-    units = []
-    for s in range(prep.n_strata):
+
+    def one(s: int) -> Unit:
         lo, hi = lay.bounds[s], lay.bounds[s + 1]
         u = Unit(lay.Z[lo:hi], lay.a[lo:hi], lay.y[lo:hi], Ws[:, lo:hi], lay.masks[s].copy(), lay.binary)
         if start is None:
@@ -325,11 +347,22 @@ def run(prep: Prepared, spec: Spec, W: np.ndarray | None, *, need_ps: bool, need
         else:
             u.status = start.strata[s].status
         if u.status == OK:
+            if Ws.shape[0] > 1:
+                u.pairs = lay.stratum_pairs(s)
             ref = start.strata[s] if start is not None else None
             _fit(u, need_ps, need_om, _beta(ref, "ps"), _beta(ref, "om"), ps_required)
             if start is None:
                 u.status = _fit_status(u, need_ps, ps_required, need_om)
-        units.append(u)
+        return u
+
+    k = prep.n_strata
+    if k > 1 and WORKERS > 1 and Ws.size >= PARALLEL_CELLS:
+        # strata are independent: fit them on worker threads (numpy releases the GIL in its loops
+        # and products). Every stratum's arithmetic is the same as in one thread, so the numbers are.
+        with ThreadPoolExecutor(max_workers=min(WORKERS, k)) as pool:
+            units = list(pool.map(one, range(k)))
+    else:
+        units = [one(s) for s in range(k)]
     return Run(lay, units, list(lay.notes))
 
 

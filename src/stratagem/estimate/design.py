@@ -96,20 +96,24 @@ def _fill(frame: pd.DataFrame, plan: list, order: np.ndarray | None) -> np.ndarr
     cache: dict = {}
     for j, (_, col, kind, level) in enumerate(plan):
         if col not in cache:
-            v = frame[col].to_numpy(dtype=float) if kind == "numeric" else frame[col].to_numpy()
-            cache = {col: v if order is None else v[order]}
+            if kind == "numeric":
+                cache = {col: frame[col].to_numpy(dtype=float)}
+            else:  # compare integer codes, not the values themselves
+                s = frame[col]
+                codes, uniques = pd.factorize(s, sort=False)
+                cache = {col: (codes, {u: i for i, u in enumerate(uniques)})}
         v = cache[col]
         if kind == "numeric":
             out[:, j] = v
         else:
-            out[:, j] = v == level
-    return out
+            codes, index = v
+            out[:, j] = codes == index.get(level, -2)
+    return out if order is None else out[order]
 
 
 def _covariance(x: np.ndarray, w: np.ndarray, total: float) -> np.ndarray:
     """Weighted covariance matrix of the columns of ``x`` (p x p), without copying ``x`` when the
     columns are roughly centred already; a centred copy is used where cancellation would lose digits."""
-    x = np.ascontiguousarray(x)
     mean = dot_cols(x, w) / total
     raw = weighted_gram(x, w) / total
     gram = raw - np.outer(mean, mean)
