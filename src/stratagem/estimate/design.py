@@ -138,10 +138,8 @@ def independent_columns(x: np.ndarray, w: np.ndarray | None = None, tol: float =
     n, p = x.shape
     w = np.ones(n) if w is None else np.asarray(w, dtype=float)
     total = w.sum()
-    keep = np.zeros(p, dtype=bool)
-    reason = [""] * p
     if p == 0 or total <= 0:
-        return keep, ["constant"] * p
+        return np.zeros(p, dtype=bool), ["constant"] * p
     return independent_from_covariance(_covariance(x, w, total), tol)
 
 
