@@ -247,7 +247,10 @@ def _fit(u: Unit, need_ps: bool, need_om: bool, start_ps=None, start_om=None, ps
         eta1 = eta + ba * (1.0 - u.a)
         eta0 = eta - ba * u.a
         if u.binary:
-            u.mu, u.Q1, u.Q0 = glm.logistic(eta), glm.logistic(eta1), glm.logistic(eta0)
+            u.Q1, u.Q0 = glm.logistic(eta1), glm.logistic(eta0)
+            # fitted values at the observed exposure: only the influence functions (one weight
+            # row) use them, so bootstrap blocks skip this pass
+            u.mu = np.where(u.a == 1, u.Q1, u.Q0) if B == 1 else None
         else:
             u.mu, u.Q1, u.Q0 = eta, eta1, eta0
         ok &= u.om.converged
