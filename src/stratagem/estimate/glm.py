@@ -12,6 +12,15 @@ For the logistic model (canonical logit link) a Newton step is the IRLS step (Mc
 model (Gaussian, identity link) is one weighted least-squares solve. Both equal
 ``statsmodels.api.GLM(y, X, family=Binomial() / Gaussian(), freq_weights=w)`` (tested to 1e-6).
 
+How the arithmetic is laid out (for speed; the results are the same root of the score equations):
+a single model's Newton step is one pass over ``X`` in blocks of rows that stay in cache, and near
+the solution the information of the last Newton step is reused while only the score is recomputed
+(the chord method; Kelley, *Iterative Methods for Linear and Nonlinear Equations*, 1995, sec. 5.4).
+Many models (bootstrap replicates) are held rows by models, with the products of column pairs
+computed once. Every matrix product is cut into pieces small enough that OpenBLAS runs each on one
+thread, summed in a fixed order (:func:`dot_rows`, :func:`dot_cols`): results are bit-identical
+whatever the number of BLAS threads, and small products do not pay for waking BLAS threads.
+
 Per-model column masks fix chosen coefficients at zero (e.g. a column that is constant in one
 stratum, or the exposure column when the same design serves a propensity model). A column with no
 weight at all in one replicate is masked for that replicate automatically.
