@@ -413,7 +413,8 @@ def fit(
         beta[0] = b
         converged[0] = conv
         if not conv:
-            eta = linear_predictor(X, np.nan_to_num(b))
+            with np.errstate(over="ignore", invalid="ignore"):  # coefficients may have run off to inf
+                eta = linear_predictor(X, np.nan_to_num(b))
             separated[0] = bool(((np.abs(eta) > SEPARATION_ETA) & (W[0] > 0)).any()) or not np.isfinite(b).all()
     else:
         X = np.ascontiguousarray(X)
@@ -426,7 +427,8 @@ def fit(
             n_iter = max(n_iter, it)
             lost = np.flatnonzero(~conv)
             if lost.size:
-                eta = dot_rows(X, np.ascontiguousarray(np.nan_to_num(b[lost]).T))  # (n, L)
+                with np.errstate(over="ignore", invalid="ignore"):  # coefficients may have run off
+                    eta = dot_rows(X, np.ascontiguousarray(np.nan_to_num(b[lost]).T))  # (n, L)
                 far = ((np.abs(eta) > SEPARATION_ETA) & (Wt[:, lost] > 0)).any(axis=0)
                 separated[lo + lost] = far | ~np.isfinite(b[lost]).all(axis=1)
     if single:
