@@ -230,24 +230,33 @@ def _quantiles(x: np.ndarray, w: np.ndarray | None, q: np.ndarray) -> np.ndarray
     return at(lo) + (h - lo) * (at(hi) - at(lo))
 
 
-def _bin(s: pd.Series, name: str, rule, w: np.ndarray | None = None) -> tuple[pd.Categorical, tuple, str]:
-    x = s.to_numpy(dtype=float)
+def bin_edges(name: str, rule, quantiles, lo: float, hi: float) -> tuple[np.ndarray, str]:
+    """Edges of a numeric modifier's bins and a few words on how they were made.
+
+    ``rule`` is a bin count (quantile bins; ``quantiles(probs)`` returns the values at those
+    probabilities) or increasing edges, which must cover the values' range ``lo`` to ``hi``. Shared
+    by the in-memory path and the engines, so both cut and complain alike.
+    """
     if isinstance(rule, int):
-        edges = np.unique(_quantiles(x, w, np.linspace(0, 1, rule + 1)))
+        edges = np.unique(quantiles(np.linspace(0, 1, rule + 1)))
         if len(edges) < 3:
             raise ModifierError(
                 f"Modifier {name!r} has too few distinct values for {rule} quantile bins; "
                 "pass fewer bins or explicit edges in bins=."
             )
-        how = f"{len(edges) - 1} quantile bins"
-    else:
-        edges = np.asarray(rule, dtype=float)
-        if x.min() < edges[0] or x.max() > edges[-1]:
-            raise ModifierError(
-                f"Bin edges for {name!r} span {_fmt(edges[0])} to {_fmt(edges[-1])}, but its values "
-                f"run from {_fmt(x.min())} to {_fmt(x.max())}. Widen the first or last edge."
-            )
-        how = f"{len(edges) - 1} bins at given edges"
+        return edges, f"{len(edges) - 1} quantile bins"
+    edges = np.asarray(rule, dtype=float)
+    if lo < edges[0] or hi > edges[-1]:
+        raise ModifierError(
+            f"Bin edges for {name!r} span {_fmt(edges[0])} to {_fmt(edges[-1])}, but its values "
+            f"run from {_fmt(lo)} to {_fmt(hi)}. Widen the first or last edge."
+        )
+    return edges, f"{len(edges) - 1} bins at given edges"
+
+
+def _bin(s: pd.Series, name: str, rule, w: np.ndarray | None = None) -> tuple[pd.Categorical, tuple, str]:
+    x = s.to_numpy(dtype=float)
+    edges, how = bin_edges(name, rule, lambda probs: _quantiles(x, w, probs), x.min(), x.max())
     idx = np.clip(np.searchsorted(edges, x, side="right") - 1, 0, len(edges) - 2)
     labels = [
         f"[{_fmt(lo)}, {_fmt(hi)}{']' if i == len(edges) - 2 else ')'}"

@@ -264,23 +264,9 @@ def _modifier_key(src, spec: Spec, name: str, where: Frag, n_distinct: int, rng)
             rule = fr.DEFAULT_BINS
         if rule is None:
             return name, _col(src, name), None, None
-        if isinstance(rule, int):
-            edges = np.unique(_quantile_edges(src, spec, name, where, np.linspace(0, 1, rule + 1)))
-            if len(edges) < 3:
-                raise ModifierError(
-                    f"Modifier {name!r} has too few distinct values for {rule} quantile bins; "
-                    "pass fewer bins or explicit edges in bins=."
-                )
-            how = f"{len(edges) - 1} quantile bins"
-        else:
-            edges = np.asarray(rule, dtype=float)
-            lo, hi = rng
-            if lo < edges[0] or hi > edges[-1]:
-                raise ModifierError(
-                    f"Bin edges for {name!r} span {fr._fmt(edges[0])} to {fr._fmt(edges[-1])}, but its "
-                    f"values run from {fr._fmt(lo)} to {fr._fmt(hi)}. Widen the first or last edge."
-                )
-            how = f"{len(edges) - 1} bins at given edges"
+        edges, how = fr.bin_edges(
+            name, rule, lambda probs: _quantile_edges(src, spec, name, where, probs), *rng
+        )
         expr = _bin_index(_as_double(src, name), edges)
         return name, expr, tuple(float(e) for e in edges), f"Modifier {name!r} cut into {how}."
     if rule is not None:
