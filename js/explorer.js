@@ -659,7 +659,7 @@ function render({ model, el }) {
       details.append(list);
       effects.append(details);
     }
-    effects.append(h("p", { class: "sg-scale" }, `${result.scale_note}; ${Math.round(result.level * 1000) / 10}% ${result.interval} intervals.`));
+    effects.append(h("p", { class: "sg-scale" }, `${result.scale_note}; ${Math.round(result.level * 1000) / 10}% ${result.interval === "wald" ? "Wald" : result.interval} intervals.`));
   }
 
   /** The table row of the transported effect: its numbers, or the reason it has none. */
