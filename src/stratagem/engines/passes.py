@@ -317,8 +317,10 @@ def cell_table(src, spec: Spec, ins: Inspection, *, confounders: bool) -> tuple[
     inner.append(("w", _as_double(src, spec.counts) if spec.counts else raw("1.0")))
     aggs = "SUM(w) AS n" + ("" if ins.binary else ", SUM(w * y) AS s1, SUM(w * y * y) AS s2")
     g = ", ".join(groups)
-    q = fmt("SELECT " + g + ", " + aggs + " FROM (SELECT {} FROM {} WHERE {}) t GROUP BY " + g,
-            _select(inner), src.table, ins.where)
+    # ORDER BY: the engine returns groups in any order (threads); a fixed order keeps seeded
+    # bootstrap draws over the cells reproducible.
+    q = fmt("SELECT " + g + ", " + aggs + " FROM (SELECT {} FROM {} WHERE {}) t GROUP BY " + g
+            + " ORDER BY " + g, _select(inner), src.table, ins.where)
     got = src.run(q)
     out = pd.DataFrame()
     for i, (name, _, edges, _) in enumerate(ins.keys):
