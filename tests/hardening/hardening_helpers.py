@@ -12,20 +12,10 @@ import pandas as pd
 import pytest
 
 from stratagem.estimate import get_estimator
+from stratagem.results import STRATA_COLUMNS
 from stratagem.spec import METHODS
 
-NUMERIC_COLUMNS = [
-    "n",
-    "n_exposed",
-    "n_unexposed",
-    "mean_exposed",
-    "mean_unexposed",
-    "estimate",
-    "se",
-    "ci_low",
-    "ci_high",
-    "p_value",
-]
+NUMERIC_COLUMNS = [c for c in STRATA_COLUMNS if c not in ("stratum", "status")]
 ADJUSTED = ("mantel-haenszel", "standardization", "ipw", "aipw")
 
 

@@ -36,6 +36,7 @@ from ..errors import (
     OutcomeError,
 )
 from ..estimate import glm
+from ..estimate._adjust import dropped_notes
 from ..estimate.base import OK, GroupMeans
 from ..estimate.design import _levels, independent_from_covariance
 from ..estimate.mantel_haenszel import CONFOUNDER_BINS, LEVEL_THRESHOLD, binning_note
@@ -577,12 +578,7 @@ def model_means(src, spec: Spec, ins: Inspection, prep, keys_to_stratum: dict, *
         for j in np.flatnonzero(~keep_s):
             dropped.setdefault(names[j], []).append(str(prep.labels["stratum"].iloc[s]))
     if k > 1:
-        for nm, where in dropped.items():
-            shown = ", ".join(repr(x) for x in where[:4]) + (" ..." if len(where) > 4 else "")
-            notes.append(
-                f"Confounder column {nm!r} is constant or collinear within stratum/strata {shown} "
-                "and was left out of the models there."
-            )
+        notes.extend(dropped_notes(dropped))
     # status per stratum, as _adjust._status
     n1 = m["swa"].to_numpy()
     status = []

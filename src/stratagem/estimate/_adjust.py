@@ -150,12 +150,7 @@ def layout(prep: Prepared) -> Layout:
         for j in np.flatnonzero(~keep):
             dropped.setdefault(names[j], []).append(str(prep.labels["stratum"].iloc[s]))
     if k > 1:
-        for name, where in dropped.items():
-            shown = ", ".join(repr(x) for x in where[:4]) + (" ..." if len(where) > 4 else "")
-            notes.append(
-                f"Confounder column {name!r} is constant or collinear within stratum/strata {shown} "
-                "and was left out of the models there."
-            )
+        notes.extend(dropped_notes(dropped))
     return Layout(order, bounds, Z, a, prep.y[order], w, names, notes, masks, prep.binary)
 
 
@@ -203,6 +198,18 @@ def _level_codes(confounders, order: np.ndarray) -> list:
         out.append((str(col), [str(x) for x in labels], codes[order]))
     return out
 
+
+
+def dropped_notes(dropped: dict) -> list[str]:
+    """Notes for confounder columns left out of some strata's models: ``{column: [stratum, ...]}``."""
+    notes = []
+    for name, where in dropped.items():
+        shown = ", ".join(repr(x) for x in where[:4]) + (" ..." if len(where) > 4 else "")
+        notes.append(
+            f"Confounder column {name!r} is constant or collinear within stratum/strata {shown} "
+            "and was left out of the models there."
+        )
+    return notes
 
 def _positivity(levels, w: np.ndarray, a: np.ndarray) -> str:
     """The first confounder level whose rows (with weight) in this stratum are all exposed or all
