@@ -88,6 +88,11 @@ def analyze(
 
         if is_engine_input(data):
             return analyze_engine(data, spec, progress)
+        # another library's frame (polars, pyarrow, ...): one copy of the used columns into pandas
+        from .dataframes import to_pandas_input
+        from .frame import _used_columns
+
+        data = to_pandas_input(data, columns=[name for _, name in _used_columns(spec)])
     prep, spec = prepare(data, spec)
     estimator = get_estimator(spec.method)
     gm = estimator(prep, spec)

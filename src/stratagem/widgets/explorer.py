@@ -224,10 +224,11 @@ class Explorer(SnapshotDisplay, anywidget.AnyWidget):
 
         in_engine = not isinstance(data, pd.DataFrame) and is_engine_input(data)
         if not isinstance(data, pd.DataFrame) and not in_engine:
-            raise DataError(
-                f"Explorer needs a pandas DataFrame, a DuckDB relation, a Parquet path or a Spark "
-                f"DataFrame; got {type(data).__name__}. Convert it first, e.g. pd.DataFrame(data)."
-            )
+            from ..dataframes import to_pandas_input
+
+            # polars, pyarrow, ...: converted once here (a lazy frame is collected); anything else
+            # raises DataError listing the accepted tables
+            data = to_pandas_input(data)
         # a table in an engine: its columns from the schema; chips summarised by engine queries
         self._engine = source_for(data) if in_engine else None
         columns = pd.Index(self._engine.columns) if in_engine else data.columns
