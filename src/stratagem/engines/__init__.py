@@ -17,6 +17,10 @@ multinomial draw over the cells with probabilities proportional to their counts,
 Tibshirani 1993, *An Introduction to the Bootstrap*, ch. 6; the equivalence is the definition of the
 multinomial). The replicates have the same distribution as on the raw rows, but not the same random
 stream, so engine and in-memory bootstrap intervals agree within Monte Carlo error, not digit for digit.
+Standardization, IPW and AIPW take the Poisson bootstrap in one more scan
+(:func:`.passes.poisson_replicates`): every row gets a Poisson(1) frequency per replicate, a fixed
+function of its values, so replicates repeat exactly on every run; the replicates are the linearised
+(influence-function) ones, first-order equivalent to refitting the models per replicate.
 """
 
 from __future__ import annotations
@@ -93,10 +97,17 @@ def analyze_engine(data: Any, spec: Spec, progress: Callable[[float], None] | No
     ins = passes.inspect(src, spec, confounder_levels=method_hint in MODEL_METHODS)
     resolved = fr.resolve(spec, ins.binary)
     model = resolved.method in MODEL_METHODS
-    if resolved.interval == "bootstrap" and (model or not ins.binary):
+    if resolved.interval == "bootstrap" and not model and not ins.binary:
         raise SpecError(
-            "interval='bootstrap' is available in an engine for methods 'crude' and 'mantel-haenszel' "
-            "with a 0/1 outcome; pass interval='wald' (influence-function intervals) here."
+            "interval='bootstrap' with a numeric outcome is available in an engine for methods "
+            "'standardization', 'ipw' and 'aipw'; for 'crude' and 'mantel-haenszel' pass interval='wald' "
+            "here, or analyse the table in pandas."
+        )
+    if resolved.interval == "bootstrap" and model and resolved.counts is not None:
+        raise SpecError(
+            "interval='bootstrap' for a table of counts (counts=) is not available in an engine for "
+            "model-based methods (each row would need a Poisson draw with its own frequency as mean); "
+            "pass interval='wald', or analyse the table in pandas."
         )
     mh = resolved.method == "mantel-haenszel"
     table, mh_notes = passes.cell_table(src, resolved, ins, confounders=mh)
@@ -150,13 +161,14 @@ def _model_analysis(src, spec: Spec, cspec: Spec, ins, table: pd.DataFrame) -> A
     for i in range(len(table)):
         keys_to_stratum.setdefault(tuple(c[i] for c in key_cols), int(prep.stratum[i]))
     gm = passes.model_means(src, spec, ins, prep, keys_to_stratum, name=spec.method)
-    frame = _effects_table(prep, spec, gm, None)
+    replicates = gm.extra.pop("engine_replicates", None)
+    frame = _effects_table(prep, spec, gm, replicates)
     strata = frame.iloc[:-1].reset_index(drop=True) if spec.strata else frame.iloc[0:0]
     overall = frame.iloc[-1][OVERALL_FIELDS].rename("overall")
     fields = dict(
         spec=spec, overall=overall, strata=strata, notes=tuple(prep.notes) + tuple(gm.notes),
         n_input=ins.n_input, n_dropped=ins.n_input - ins.n_kept,
-        extra={"replicates": None, "replicate_theta": None, "bin_edges": {},
+        extra={"replicates": replicates, "replicate_theta": None, "bin_edges": {},
                "covariance": {"v11": gm.v11, "v00": gm.v00, "v10": gm.v10}, **gm.extra},
     )
     for path in extensions:

@@ -634,7 +634,79 @@ def model_means(src, spec: Spec, ins: Inspection, prep, keys_to_stratum: dict, *
     gm = GroupMeans(n, nn1, nn0, m1, m0, v11, v00, v10, status, notes=notes)
     gm.extra["confounder_columns"] = tuple(names)
     gm.extra["engine_checks"] = diag["checks"]
+    if spec.interval == "bootstrap":
+        S, layers = diag["rows"]
+        gm.extra["engine_replicates"] = poisson_replicates(
+            src, base[0], layers, S, ins.where, m1, m0, okmask, n_boot=spec.n_boot, seed=spec.seed)
     return gm
+
+
+#: Poisson(1) cumulative probabilities P(W <= j), j = 0..17 (beyond 17 the remaining mass is < 1e-16)
+_POISSON1_CDF = tuple(float(np.exp(-1.0) * sum(1.0 / np.prod(np.arange(1, i + 1)) for i in range(j + 1)))
+                      for j in range(18))
+
+
+def _poisson_weight(u: Frag) -> Frag:
+    """A Poisson(1) count from a uniform ``u`` by inversion of its distribution function."""
+    parts = [fmt("WHEN {} < {} THEN " + f"{j}.0", u, value(c)) for j, c in enumerate(_POISSON1_CDF)]
+    return fmt("(CASE {} ELSE 18.0 END)", join(" ", parts))
+
+
+def poisson_replicates(src, row_cols: list, layers: list, S: StratumTable, where: Frag, m1: np.ndarray,
+                       m0: np.ndarray, okmask: np.ndarray, *, n_boot: int, seed: int):
+    """Bootstrap replicates of the potential-outcome means, in one scan, with Poisson(1) row weights.
+
+    The Poisson bootstrap (Hanley & MacGibbon 2006, *Comput. Methods Programs Biomed.* 83:57-62;
+    Chamandy, Muralidharan, Najmi & Naidu 2012, "Estimating uncertainty for massive data streams",
+    Google technical report; both from memory) gives every row an independent Poisson(1) frequency in
+    each replicate instead of drawing exactly ``n`` rows: the replicate sizes vary a little, and the
+    rows need not be gathered, so each replicate is a weighted sum that the engine computes during one
+    pass. The weight of row ``i`` in replicate ``b`` is a fixed function of the row's values, its rank
+    among identical rows, ``b`` and ``seed`` (a hash inverted through the Poisson(1) distribution
+    function), so a replicate is the same on every run whatever order the engine reads the rows in.
+
+    Each replicate is the linearised (one-step) estimate: with influence functions ``f`` (the same
+    ones the Wald standard errors use, which carry the estimation of the working models),
+    ``m_b = m + sum_i W_ib w_i f_i / sum_i W_ib w_i`` per stratum and arm, i.e. the models are not
+    refitted per replicate. This is the score or multiplier bootstrap (Kline & Santos 2012, "A score
+    based approach to wild bootstrap inference", *J. Econom. Methods* 1:23-41, from memory), first-order
+    equivalent to refitting; the overall replicate averages the strata by their replicate sizes.
+
+    Returns
+    -------
+    (m1_b, m0_b) : arrays (n_boot, K + 1)
+        Replicates per stratum and overall (last column); NaN where the stratum is not estimable.
+    """
+    k = len(okmask)
+    cols = [a for a, _ in row_cols]
+    body = fmt("SELECT {} FROM {} WHERE {}", _select(row_cols), src.table, where)
+    order = ", ".join(cols)
+    body = fmt("SELECT *, ROW_NUMBER() OVER (PARTITION BY " + order + " ORDER BY " + order + ") AS rn "
+               "FROM ({}) r0", body)
+    body = S.joined(body)
+    for i, layer in enumerate(layers):
+        if layer:
+            body = fmt("SELECT *, {} FROM (" + "{}" + f") l{i}", _select(layer), body)
+    u = src.dialect.uniform([raw(c) for c in cols] + [raw("rn"), raw("rb.b"), value(int(seed))])
+    draws = fmt("SELECT t.s AS s, rb.b AS b, t.w AS w, t.f1 AS f1, t.f0 AS f0, {} AS u FROM ({}) t "
+                "CROSS JOIN ({}) rb", u, body, src.dialect.replicate_numbers(n_boot))
+    weighted = fmt("SELECT s, b, w, f1, f0, {} AS pw FROM ({}) d", _poisson_weight(raw("u")), draws)
+    q = fmt("SELECT s, b, SUM(pw * w) AS n, SUM(pw * w * f1) AS t1, SUM(pw * w * f0) AS t0 "
+            "FROM ({}) p GROUP BY s, b", weighted)
+    got = src.run(q)
+    n, t1, t0 = (np.zeros((n_boot, k)) for _ in range(3))
+    s_idx, b_idx = got["s"].to_numpy(int), got["b"].to_numpy(int)
+    for arr, c in ((n, "n"), (t1, "t1"), (t0, "t0")):
+        arr[b_idx, s_idx] = got[c].to_numpy(float)
+    m1_b, m0_b = np.full((n_boot, k + 1), np.nan), np.full((n_boot, k + 1), np.nan)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        m1_b[:, :k] = np.where(okmask & (n > 0), m1[:k] + t1 / n, np.nan)
+        m0_b[:, :k] = np.where(okmask & (n > 0), m0[:k] + t0 / n, np.nan)
+        if okmask.all():
+            tot = n.sum(axis=1)
+            m1_b[:, k] = np.sum(n * m1_b[:, :k], axis=1) / tot
+            m0_b[:, k] = np.sum(n * m0_b[:, :k], axis=1) / tot
+    return m1_b, m0_b
 
 
 def _exposure_expr(src, spec: Spec, prep) -> Frag:
@@ -810,8 +882,10 @@ def _means_and_variances(src, base, ins, Z, masks, fit, okmask, N, n1, name, pil
         m1[:k], m0[:k] = pilot + G1 / safeN, pilot + G0 / safeN
         var = pd.DataFrame({"f1f1": got["g11"] - G1 * G1 / safeN, "f0f0": got["g00"] - G0 * G0 / safeN,
                             "f1f0": got["g10"] - G1 * G0 / safeN, "f1": 0.0, "f0": 0.0})
-        fdef = None
-    if fdef is not None:
+        # the influence functions themselves, for bootstrap replicates: psi - m = g - G / N
+        fdef = [("f1", fmt("(g1 - {})", _per_stratum(G1 / safeN, S))),
+                ("f0", fmt("(g0 - {})", _per_stratum(G0 / safeN, S)))]
+    if name != "aipw":
         outer = [("f1f1", raw("SUM(w * f1 * f1)")), ("f0f0", raw("SUM(w * f0 * f0)")),
                  ("f1f0", raw("SUM(w * f1 * f0)")), ("f1", raw("SUM(w * f1)")), ("f0", raw("SUM(w * f0)"))]
         var = _grouped(src, base[0], outer, ins.where, k, layers=layers + [fdef], st=S)
@@ -822,4 +896,5 @@ def _means_and_variances(src, base, ins, Z, masks, fit, okmask, N, n1, name, pil
         v11[s], v00[s], v10[s] = (var[c].iloc[s] / N[s] ** 2 for c in ("f1f1", "f0f0", "f1f0"))
     diag = {c: var[c].to_numpy() for c in ("f1f1", "f0f0", "f1f0", "f1", "f0")}
     diag["checks"] = got.drop(columns=[c for c in got.columns if not c.startswith(("emin", "emax", "sw"))])
+    diag["rows"] = (S, layers + [fdef])  # row columns f1, f0: the influence functions (for replicates)
     return m1, m0, v11, v00, v10, diag

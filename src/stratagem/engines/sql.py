@@ -78,6 +78,24 @@ class Dialect:
     def isnan(self, expr: Frag) -> Frag:
         return fmt("isnan({})", expr)
 
+    def uniform(self, parts: list[Frag]) -> Frag:
+        """A number in [0, 1) that is a fixed function of ``parts`` (a hash of them to 53 bits).
+
+        DuckDB's ``hash`` and Spark's ``xxhash64`` differ, so the two engines give different (equally
+        distributed) numbers for the same values; each gives the same number on every run.
+        """
+        if self.name == "duckdb":
+            return fmt("(CAST(hash({}) % 9007199254740992 AS DOUBLE) / 9007199254740992.0)", join(", ", parts))
+        return fmt("(CAST(pmod(xxhash64({}), 9007199254740992) AS DOUBLE) / 9007199254740992.0)",
+                   join(", ", parts))
+
+    def replicate_numbers(self, count: int) -> Frag:
+        """A one-column table ``b`` holding 0, 1, ..., count - 1."""
+        n = str(int(count))
+        if self.name == "duckdb":
+            return raw("SELECT range AS b FROM range(" + n + ")")
+        return raw("SELECT id AS b FROM range(" + n + ")")
+
     def quantile(self, expr: Frag, q: float) -> Frag:
         """Exact quantile with linear interpolation between order statistics (numpy's default)."""
         if self.name == "duckdb":
