@@ -56,8 +56,11 @@ def analyze(
 
     Parameters
     ----------
-    data : pandas.DataFrame
+    data : pandas.DataFrame, polars or pyarrow frame, DuckDB relation, Parquet path or Spark DataFrame
         One row per individual (or per cell of a table of counts, with ``counts=``). Only read.
+        Frames that narwhals reads (polars, pyarrow, ...) are converted once to pandas (a polars
+        LazyFrame is collected); DuckDB relations, Parquet paths and Spark DataFrames are analysed
+        where they live (:mod:`stratagem.engines`).
     spec : Spec, dict or None
         A Spec, or a mapping of its fields; ``fields`` given as keywords override it.
     progress : callable, optional
