@@ -158,14 +158,39 @@ def inspect(src, spec: Spec, *, confounder_levels: bool) -> Inspection:
     """Checks of the table against the Spec: the same errors as :func:`stratagem.frame.prepare`."""
     _check_schema(src, spec)
     used = _used(spec)
-    # missing values per used column (one scan)
+    where = join(" AND ", [fmt("NOT {}", _missing(src, c)) for c in used])
+
+    def complete(expr: Frag) -> Frag:  # the value on complete rows, NULL (ignored by aggregates) otherwise
+        return fmt("(CASE WHEN __complete THEN {} END)", expr)
+
+    # One scan for the missing values per used column and the sums over the complete rows, another
+    # for the distinct counts: DuckDB runs a query mixing DISTINCT and plain aggregates several times
+    # slower than the two apart (10 s against 2 s on 100 million rows).
     items = [("n_input", raw("COUNT(*)"))]
     items += [(f"m{i}", fmt("SUM(CASE WHEN {} THEN 1 ELSE 0 END)", _missing(src, c))) for i, c in enumerate(used)]
-    got = src.run(fmt("SELECT {} FROM {}", _select(items), src.table)).iloc[0]
-    n_input = int(got["n_input"])
-    miss = {c: int(got[f"m{i}"] or 0) for i, c in enumerate(used)}
+    items.append(("n_kept", raw("SUM(CASE WHEN __complete THEN 1 ELSE 0 END)")))
+    y = _as_double(src, spec.outcome) if src.kinds[spec.outcome] != "string" else None
+    w = _as_double(src, spec.counts) if spec.counts else raw("1.0")
+    if y is not None:
+        items += [
+            ("y_not01", fmt("SUM({})", complete(fmt("CASE WHEN {} = 0.0 OR {} = 1.0 THEN 0 ELSE 1 END", y, y)))),
+            ("y_inf", fmt("SUM({})", complete(fmt("CASE WHEN ABS({}) = {} THEN 1 ELSE 0 END", y, value(float("inf")))))),
+            ("sw", fmt("SUM({})", complete(w))),
+            ("swy", fmt("SUM({})", complete(fmt("{} * {}", w, y)))),
+        ]
+    if spec.counts:
+        items.append(("w_min", fmt("MIN({})", complete(w))))
+    numeric_names = [c for c in list(spec.strata) + list(spec.confounders)
+                     if src.kinds[c] in ("numeric", "float")]
+    for i, c in enumerate(list(spec.strata) + list(spec.confounders)):
+        if c in numeric_names:
+            x = complete(_as_double(src, c))
+            items += [(f"lo{i}", fmt("MIN({})", x)), (f"hi{i}", fmt("MAX({})", x))]
+    flagged = fmt("SELECT *, ({}) AS __complete FROM {}", where, src.table)
+    stats = src.run(fmt("SELECT {} FROM ({}) t", _select(items), flagged)).iloc[0]
+    n_input = int(stats["n_input"])
+    miss = {c: int(stats[f"m{i}"] or 0) for i, c in enumerate(used)}
     bad = {k: v for k, v in miss.items() if v}
-    where = join(" AND ", [fmt("NOT {}", _missing(src, c)) for c in used])
     notes = []
     if bad:
         described = ", ".join(f"{k!r}: {v}" for k, v in bad.items())
@@ -174,35 +199,22 @@ def inspect(src, spec: Spec, *, confounder_levels: bool) -> Inspection:
                 f"Missing values in used columns ({described}). Fill or remove them, "
                 "or pass missing='drop' to analyse complete rows only."
             )
-    # statistics of the complete rows (one scan)
-    items = [("n_kept", raw("COUNT(*)")), ("n_exp", fmt("COUNT(DISTINCT {})", _col(src, spec.exposure)))]
-    y = _as_double(src, spec.outcome) if src.kinds[spec.outcome] != "string" else None
-    w = _as_double(src, spec.counts) if spec.counts else raw("1.0")
-    if y is not None:
-        items += [
-            ("y_not01", fmt("SUM(CASE WHEN {} = 0.0 OR {} = 1.0 THEN 0 ELSE 1 END)", y, y)),
-            ("y_inf", fmt("SUM(CASE WHEN ABS({}) = {} THEN 1 ELSE 0 END)", y, value(float("inf")))),
-            ("sw", fmt("SUM({})", w)),
-            ("swy", fmt("SUM({} * {})", w, y)),
-        ]
-    if spec.counts:
-        items.append(("w_min", fmt("MIN({})", w)))
-    numeric_names = [c for c in list(spec.strata) + list(spec.confounders)
-                     if src.kinds[c] in ("numeric", "float")]
-    # distinct counts (a costly hash per column) only where they decide something: modifiers,
-    # text confounders, and numeric confounders of Mantel-Haenszel (binned when they have many values)
+    # distinct counts (a costly hash per column) only where they decide something: the exposure,
+    # modifiers, text confounders, and numeric confounders of Mantel-Haenszel (binned when they have
+    # many values)
     counted = set(spec.strata) | {c for c in spec.confounders
                                   if c not in numeric_names or spec.method == "mantel-haenszel"}
+    items = [("n_exp", fmt("COUNT(DISTINCT {})", _col(src, spec.exposure)))]
     for i, c in enumerate(list(spec.strata) + list(spec.confounders)):
         if c in counted and spec.counts and c in numeric_names and c not in spec.strata:
             # as mantel_haenszel: values of rows with a positive frequency
             items.append((f"d{i}", fmt("COUNT(DISTINCT CASE WHEN {} > 0 THEN {} END)", w, _col(src, c))))
         elif c in counted:
             items.append((f"d{i}", fmt("COUNT(DISTINCT {})", _col(src, c))))
-        if c in numeric_names:
-            items += [(f"lo{i}", fmt("MIN({})", _as_double(src, c))), (f"hi{i}", fmt("MAX({})", _as_double(src, c)))]
-    stats = src.run(fmt("SELECT {} FROM {} WHERE {}", _select(items), src.table, where)).iloc[0]
-    n_kept = int(stats["n_kept"])
+    if int(stats["n_kept"] or 0) > 0:
+        stats = pd.concat([stats, src.run(fmt("SELECT {} FROM {} WHERE {}", _select(items), src.table,
+                                              where)).iloc[0]])
+    n_kept = int(stats["n_kept"] or 0)
     if bad:
         notes.append(f"{n_input - n_kept} row(s) with missing values dropped "
                      f"({', '.join(f'{k!r}: {v}' for k, v in bad.items())}).")
