@@ -99,6 +99,101 @@ def test_quasi_complete_separation_is_reported():
     assert not got.converged and got.separated
 
 
+def _heavy_counts(random_state=7, n=300):
+    """Exposure model data where 5% of rows stand for a million individuals each (the same recipe
+    as the hardening suite's extreme-frequency-weight case). Plain Newton steps from 0 overshoot
+    on these weights until the coefficients run off to infinity."""
+    rng = np.random.default_rng(random_state)
+    c1 = rng.normal(0, 1, n)
+    c2 = rng.choice(["p", "q", "r"], n)
+    a = (rng.random(n) < 1 / (1 + np.exp(-0.8 * c1))).astype(float)
+    rng.random(n)  # the outcome's draws in that recipe, kept so the weights below are the same
+    w = np.where(rng.random(n) < 0.05, 1_000_000, 1).astype(float)
+    X = np.column_stack([np.ones(n), c1, c2 == "q", c2 == "r"]).astype(float)
+    return X, a, w
+
+
+def _reference_heavy(X, y, w):
+    """statsmodels' coefficients with these frequency weights, or (if it does not converge there)
+    with the weights divided by 1e6: logistic coefficients do not change when all frequency
+    weights are multiplied by one constant."""
+    import warnings
+
+    for scale in (1.0, 1e6):
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore")
+            ref = sm.GLM(y, X, family=sm.families.Binomial(), freq_weights=w / scale).fit(tol=1e-14, maxiter=500)
+        if ref.converged and np.isfinite(ref.params).all():
+            return ref.params
+    raise AssertionError("statsmodels did not converge on either scale")
+
+
+def _score(X, y, w, beta):
+    mu = 1 / (1 + np.exp(-(X @ beta)))
+    return X.T @ (w * (y - mu))
+
+
+def test_extreme_frequency_weights_converge_with_step_halving():
+    X, a, w = _heavy_counts()
+    got = glm.fit(X, a, w)
+    assert got.converged and not got.separated
+    np.testing.assert_allclose(got.beta, _reference_heavy(X, a, w), rtol=1e-7, atol=1e-7)
+    # the score equations hold: the score is zero to rounding (relative to the total weight)
+    assert np.abs(_score(X, a, w, got.beta)).max() < 1e-6 * w.sum() * 1e-6
+
+
+def test_extreme_frequency_weights_batched_and_scale_free():
+    X, a, w = _heavy_counts()
+    rng = np.random.default_rng(3)
+    W = np.vstack([w, 3.0 * w, w / 1e6, rng.multinomial(len(w), np.full(len(w), 1 / len(w))) * w])
+    got = glm.fit(X, a, W)
+    assert got.converged.all() and not got.separated.any()
+    single = glm.fit(X, a, w).beta
+    for b in range(3):  # a common scale of the weights leaves the coefficients unchanged
+        np.testing.assert_allclose(got.beta[b], single, rtol=1e-9, atol=1e-9)
+    np.testing.assert_allclose(got.beta[3], _reference_heavy(X, a, W[3]), rtol=1e-6, atol=1e-6)
+    np.testing.assert_allclose(got.beta[3], glm.fit(X, a, W[3]).beta, rtol=1e-9, atol=1e-9)
+
+
+def _nll(X, y, w, beta):
+    eta = X @ beta
+    return float(np.sum(w * (np.logaddexp(0.0, eta) - y * eta)))
+
+
+def test_steps_declared_sure_to_descend_do_descend():
+    """The bound that lets a step skip the likelihood check never passes a step that raises it:
+    Newton and chord steps (information taken at another point) from random points."""
+    rng = np.random.default_rng(0)
+    sure = unsure = 0
+    for _ in range(300):
+        n, p = int(rng.integers(5, 60)), int(rng.integers(1, 5))
+        X = np.column_stack([np.ones(n), rng.normal(0, rng.uniform(0.2, 3), (n, p - 1))])
+        y = (rng.random(n) < 0.5).astype(float)
+        w = rng.choice([1.0, 1e6], n, p=[0.9, 0.1])
+        base = rng.normal(0, rng.uniform(0.01, 3), p)
+        at = base + rng.normal(0, rng.uniform(0, 0.5), p) * (rng.random() < 0.5)  # where H is taken
+        mu = 1 / (1 + np.exp(-(X @ at)))
+        H = (X * (w * mu * (1 - mu))[:, None]).T @ X
+        try:
+            step = np.linalg.solve(H, _score(X, y, w, base))
+        except np.linalg.LinAlgError:
+            continue
+        if glm._certain_descent(step, base - at, glm._col_absmax(X)):
+            sure += 1
+            before = _nll(X, y, w, base)
+            assert _nll(X, y, w, base + step) <= before + 1e-12 * abs(before)
+        else:
+            unsure += 1
+    assert sure > 30 and unsure > 30  # both branches were exercised
+
+
+def test_column_absolute_maxima():
+    rng = np.random.default_rng(1)
+    for n, p in [(1, 3), (5, 1), (100, 7), (20_000, 8), (8193, 3), (17, 200)]:
+        X = rng.normal(size=(n, p))
+        assert np.array_equal(glm._col_absmax(X), np.abs(X).max(axis=0))
+
+
 def test_unknown_family_is_rejected():
     with pytest.raises(ValueError, match="family must be one of"):
         glm.fit(np.ones((3, 1)), np.zeros(3), family="poisson")

@@ -21,6 +21,15 @@ computed once. Every matrix product is cut into pieces small enough that OpenBLA
 thread, summed in a fixed order (:func:`dot_rows`, :func:`dot_cols`): results are bit-identical
 whatever the number of BLAS threads, and small products do not pay for waking BLAS threads.
 
+Logistic fits are damped Newton iterations (step-halving; McCullagh & Nelder 1989, sec. 2.5;
+Marschner, "glm2: Fitting generalized linear models with convergence problems", R Journal 3(2),
+2011, from memory): a step that does not decrease the weighted negative log-likelihood of its model
+is halved, up to ``MAX_HALVINGS`` times. With frequency weights of a million on a few rows, plain
+Newton steps overshoot until the coefficients run off to infinity; the halved steps converge. Most
+steps are proved to decrease the likelihood by a cheap bound (:func:`_certain_descent`), so the
+likelihood (a logarithm per row) is only computed for steps that could overshoot, and on data where
+every full step decreases it the iterates are exactly the undamped ones.
+
 Per-model column masks fix chosen coefficients at zero (e.g. a column that is constant in one
 stratum, or the exposure column when the same design serves a propensity model). A column with no
 weight at all in one replicate is masked for that replicate automatically.
@@ -37,6 +46,7 @@ from __future__ import annotations
 from dataclasses import dataclass
 
 import numpy as np
+from scipy.special import xlogy
 
 __all__ = [
     "GLMFit", "fit", "linear_predictor", "information", "projection", "logistic", "weighted_gram",
@@ -57,6 +67,9 @@ GEMV_SERIAL = 8_000
 BLOCKS_AT_ONCE = 32  # pieces multiplied per numpy call in dot_cols (bounds its temporary)
 REP_BLOCK = 64  # most replicate models updated together in a batched fit
 CHORD_SWITCH = 1e-3  # relative step size below which Newton's information is kept (chord steps)
+MAX_HALVINGS = 30  # step-halvings tried before a logistic fit gives up (as glm2's inner loop)
+DESCENT_SLACK = 1e-8  # relative rise of the negative log-likelihood taken as rounding, not a rise
+CERTAIN_BELOW = 0.9  # a step whose descent bound is below this (1 in exact arithmetic) is not checked
 
 
 def _block_rows(k: int, c: int) -> int:
@@ -148,6 +161,96 @@ def weighted_gram(X: np.ndarray, s: np.ndarray, extra: np.ndarray | None = None)
     return out
 
 
+def _row_nll(mu, rest, y_sel, y, y_binary):
+    """Negative log-likelihood of each row of a logistic model (before weighting).
+
+    ``mu`` and ``rest = 1 - mu`` come from :func:`logistic`; ``y_sel`` is ``y == 1`` (binary
+    outcomes). A row whose fitted probability of its own outcome has underflowed to 0 gives ``inf``.
+    """
+    with np.errstate(divide="ignore"):
+        if y_binary:
+            out = np.where(y_sel, mu, rest)
+            np.log(out, out=out)
+            np.negative(out, out=out)
+            return out
+        return -(xlogy(y, mu) + xlogy(1.0 - y, rest))
+
+
+def _weighted_nll(w: np.ndarray, nll: np.ndarray):
+    """``sum(w * nll)`` over rows (axis 0), numpy's fixed-order sum; rows with weight 0 add 0 even
+    where their ``nll`` is infinite."""
+    with np.errstate(invalid="ignore"):
+        prod = w * nll
+    total = prod.sum(axis=0)
+    if np.isnan(total).any():
+        total = np.where(w > 0, prod, 0.0).sum(axis=0)
+    return total
+
+
+def _nll_at(X, y, y_one, y_binary, W, bT):
+    """Negative log-likelihood of logistic models with coefficients ``bT`` (p, B) and weights ``W``
+    (n, B) (or (p,) and (n,) for one model), in blocks of rows; an extra pass used only when a step
+    needs checking from a point whose likelihood was not computed yet."""
+    vec = bT.ndim == 1
+    if not np.any(bT):  # at 0 every fitted probability is 1/2: the likelihood is sum(w) log 2
+        return W.sum(axis=0) * np.log(2.0)
+    n = X.shape[0]
+    rows = CHUNK_ROWS if vec else max(256, BATCH_CELLS // bT.shape[1])
+    total = 0.0 if vec else np.zeros(bT.shape[1])
+    for lo in range(0, n, rows):
+        hi = min(n, lo + rows)
+        mu, rest = logistic(dot_rows(X[lo:hi], bT), out_rest=True)
+        yc = y[lo:hi] if vec else y[lo:hi, None]
+        total = total + _weighted_nll(W[lo:hi], _row_nll(mu, rest, y_one[lo:hi], yc, y_binary))
+    return total
+
+
+def _worse(nll_new, nll_old):
+    """Whether a candidate's negative log-likelihood is not a decrease (elementwise): not finite,
+    or above the accepted one by more than rounding (``DESCENT_SLACK`` relative, as glm2 does)."""
+    nll_new = np.asarray(nll_new, dtype=float)
+    with np.errstate(invalid="ignore"):
+        return ~np.isfinite(nll_new) | (nll_new - nll_old > DESCENT_SLACK * (0.1 + np.abs(nll_new)))
+
+
+def _col_absmax(X: np.ndarray) -> np.ndarray:
+    """``max_i |X_ij|`` per column (p,), in blocks of rows. (numpy reduces a tall, narrow array
+    along its rows slowly; viewing ``k`` rows as one wide row first is several times faster.)"""
+    n, p = X.shape
+    out = np.zeros(p)
+    k = max(1, -(-128 // max(p, 1)))
+    for lo in range(0, n, CHUNK_ROWS):
+        Xc = np.abs(X[lo : lo + CHUNK_ROWS])
+        m = (len(Xc) // k) * k
+        if m:
+            np.maximum(out, Xc[:m].reshape(-1, k * p).max(axis=0).reshape(k, p).max(axis=0), out=out)
+        if m < len(Xc):
+            np.maximum(out, Xc[m:].max(axis=0), out=out)
+    return out
+
+
+def _certain_descent(step, shift, colmax):
+    """Whether a step is sure to decrease the logistic negative log-likelihood, without evaluating
+    it (elementwise over models: ``step``, ``shift`` (B, p) or (p,)).
+
+    Along a step ``d`` the likelihood ``phi(t)`` of logistic regression satisfies
+    ``|phi'''| <= R phi''`` with ``R = max_i |x_i' d|`` (since ``|l'''| <= l''`` for the logistic
+    loss; Bach, "Self-concordant analysis for logistic regression", Electron. J. Statist. 4, 2010,
+    from memory), so ``phi(1) - phi(0) <= phi'(0) + phi''(0) (e^R - 1 - R) / R^2``. For a step
+    ``d = H^{-1} g`` with the information ``H`` taken at a point ``shift`` away from the current one,
+    ``-phi'(0) = g'd = d'Hd`` and ``phi''(0) <= e^{R_H} d'Hd`` (same argument,
+    ``R_H = max_i |x_i' shift|``): the step decreases the likelihood when
+    ``e^{R_H} (e^R - 1 - R) / R^2 < 1``. ``R`` is bounded by ``sum_j |d_j| max_i |x_ij|``; a margin
+    (``CERTAIN_BELOW``) keeps rounding out.
+    """
+    R = np.abs(step) @ colmax
+    RH = np.abs(shift) @ colmax
+    with np.errstate(over="ignore", invalid="ignore", divide="ignore"):
+        ratio = np.where(R > 1e-4, (np.expm1(R) - R) / (R * R), 0.5 + R / 6.0)
+        bound = np.exp(RH) * ratio
+    return bound < CERTAIN_BELOW
+
+
 def _newton_single(X, y, w, mask, beta, tol, max_iter, y_binary):
     """Logistic Newton steps for one model, each step one pass over ``X`` in cache-sized blocks:
     per block the linear predictor, ``w mu (1 - mu)`` and ``w (y - mu)``, then ``X' [S X, r]``.
@@ -157,6 +260,14 @@ def _newton_single(X, y, w, mask, beta, tol, max_iter, y_binary):
     and as the information changes little near the solution the error still shrinks by orders of
     magnitude per step); a step that does not halve the previous one brings back full Newton steps.
     The solution is the same root of the score equations.
+
+    Step-halving (a damped Newton method; McCullagh & Nelder 1989; Marschner, "glm2: Fitting
+    generalized linear models with convergence problems", R Journal 3(2), 2011, from memory): a step
+    not sure to decrease the negative log-likelihood (:func:`_certain_descent`) is checked, the
+    likelihood at the new point computed in the same pass; when it is not a decrease
+    (:func:`_worse`), the point is rejected and the step halved, up to ``MAX_HALVINGS`` times (then
+    the fit stops, not converged, at the last accepted point). Steps that do decrease it are taken
+    as they are, so where every full step decreases the likelihood nothing changes.
     """
     n, p = X.shape
     y_one = y == 1
@@ -164,16 +275,22 @@ def _newton_single(X, y, w, mask, beta, tol, max_iter, y_binary):
     n_iter = 0
     M = mask[None, :]
     buf = np.empty((min(CHUNK_ROWS, n), p + 1))
-    H = None
+    colmax = np.zeros(p)  # max_i |x_ij|, taken in the first pass while each block is in cache
+    H = beta_H = None
     prev = np.inf
-    for it in range(max_iter):
-        n_iter = it + 1
+    base, nll_base, step, halvings, check = None, np.nan, None, 0, False
+    while n_iter < max_iter:
         chord = H is not None and prev <= CHORD_SWITCH
         HG = np.zeros((p, p + 1))
+        nll = 0.0
         for lo in range(0, n, CHUNK_ROWS):
             hi = min(n, lo + CHUNK_ROWS)
             Xc, wc, B = X[lo:hi], w[lo:hi], buf[: hi - lo]
             mu, rest = logistic(dot_rows(Xc, beta), out_rest=True)
+            if base is None:
+                np.maximum(colmax, _col_absmax(Xc), out=colmax)
+            if check:
+                nll += _weighted_nll(wc, _row_nll(mu, rest, y_one[lo:hi], y[lo:hi], y_binary))
             if y_binary:
                 r = np.where(y_one[lo:hi], rest, -mu)
             else:
@@ -188,8 +305,20 @@ def _newton_single(X, y, w, mask, beta, tol, max_iter, y_binary):
             np.multiply(Xc, mu[:, None], out=B[:, :p])
             B[:, p] = r
             HG += dot_cols(Xc, B)
+        if check and _worse(nll, nll_base):
+            if halvings == MAX_HALVINGS:
+                beta = base  # no shorter step decreases the likelihood: stop at the best point
+                break
+            halvings += 1
+            step = 0.5 * step
+            beta = base + step
+            H = None  # the next accepted point starts again with a full Newton step
+            continue
+        base, nll_base, halvings = beta, (nll if check else np.nan), 0
+        n_iter += 1
         if not chord:
             H = HG[None, :, :p].copy()
+            beta_H = base
         step = _solve(H, HG[None, :, p], M)[0]
         new = beta + step
         beta = new
@@ -202,6 +331,9 @@ def _newton_single(X, y, w, mask, beta, tol, max_iter, y_binary):
         if chord and size > 0.5 * prev:
             H = None  # the chord steps stall: back to Newton steps
         prev = size
+        check = not _certain_descent(step, base - beta_H, colmax)
+        if check and np.isnan(nll_base):
+            nll_base = _nll_at(X, y, y_one, y_binary, w, base)
     return beta, converged, n_iter
 
 
@@ -259,23 +391,32 @@ def _crossprod(X: np.ndarray, St: np.ndarray, pairs) -> np.ndarray:
 BATCH_CELLS = 32_768  # rows x models handled at once inside a batched Newton step (256 kB each)
 
 
-def _score_info(X, y, y_one, y_binary, Wa, bT, XX):
-    """Information and score pieces of B logistic models on a block of rows (rows by models).
+def _score_info(X, y, y_one, y_binary, Wa, bT, XX, check=None):
+    """Information, score and negative log-likelihood of B logistic models on a block of rows
+    (rows by models).
 
-    With ``XX`` (the block's column products) returns ``(flat (q, B), g (p, B))``; without it the
-    full ``(H (B, p, p), g (B, p))``.
+    With ``XX`` (the block's column products) returns ``(flat (q, B), g (p, B), nll)``; without
+    it the full ``(H (B, p, p), g (B, p), nll)``. ``nll`` holds the negative log-likelihood of the
+    models selected by the boolean ``check`` (B,) only (None when none is).
     """
     mu, rest = logistic(dot_rows(X, bT), out_rest=True)  # (rows, B)
+    yc = y[:, None]
+    nll = None
+    if check is not None and check.any():
+        if check.all():
+            nll = _weighted_nll(Wa, _row_nll(mu, rest, y_one, yc, y_binary))
+        else:
+            nll = _weighted_nll(Wa[:, check], _row_nll(mu[:, check], rest[:, check], y_one, yc, y_binary))
     if y_binary:
         r = np.where(y_one, rest, -mu)
     else:
-        r = y[:, None] * rest - (1.0 - y[:, None]) * mu
+        r = yc * rest - (1.0 - yc) * mu
     r *= Wa  # w (y - mu)
     mu *= rest
     mu *= Wa  # w mu (1 - mu)
     if XX is None:
-        return _crossprod(X, mu, None), dot_cols(X, r).T
-    return dot_cols(XX, mu), dot_cols(X, r)
+        return _crossprod(X, mu, None), dot_cols(X, r).T, nll
+    return dot_cols(XX, mu), dot_cols(X, r), nll
 
 
 def _newton_batch(X, y, Wt, M, beta, tol, max_iter, family, pairs):
@@ -284,6 +425,11 @@ def _newton_batch(X, y, Wt, M, beta, tol, max_iter, family, pairs):
     Returns ``(beta, converged, n_iter)``. Models leave the batch when they converge (or fail).
     (Chord steps, as in :func:`_newton_single`, were tried here and lost: warm-started bootstrap
     fits converge in three Newton steps, while the chord steps' linear rate needed about seven.)
+
+    Step-halving as in :func:`_newton_single`, model by model: each pass evaluates every active
+    model at its candidate point, with the negative log-likelihood of the models whose last step was
+    not sure to decrease it; a model whose likelihood did not decrease halves its last step instead
+    of taking a new one (the others go on with Newton steps in the same pass).
     """
     n, p = X.shape
     B = Wt.shape[1]
@@ -296,38 +442,76 @@ def _newton_batch(X, y, Wt, M, beta, tol, max_iter, family, pairs):
     active = np.ones(B, dtype=bool)
     y_binary = bool(np.all((y == 0) | (y == 1)))
     y_one = (y == 1)[:, None]
-    n_iter = 0
-    for it in range(max_iter):
+    steps = np.zeros(B, dtype=np.int64)  # Newton steps taken by each model
+    halvings = np.zeros(B, dtype=np.int64)  # halvings of each model's current step
+    base = beta.copy()  # last accepted point of each model
+    nll_base = np.full(B, np.nan)  # its negative log-likelihood, where computed
+    check = np.zeros(B, dtype=bool)  # the candidate point's likelihood is to be checked
+    step = np.zeros((B, p))
+    colmax = _col_absmax(X)
+    while True:
         idx = np.flatnonzero(active)
         if idx.size == 0:
             break
-        n_iter = it + 1
         b = beta[idx]
         bT = np.ascontiguousarray(b.T)
         Wa = Wt if idx.size == B else np.ascontiguousarray(Wt[:, idx])
+        chk = check[idx]
+        nll = np.zeros(int(chk.sum()))
         if pairs is None:
-            H, g = _score_info(X, y, y_one, y_binary, Wa, bT, None)
+            H, g, lc = _score_info(X, y, y_one, y_binary, Wa, bT, None, chk)
+            if lc is not None:
+                nll += lc
         else:
             H, g = np.empty((idx.size, p, p)), np.zeros((p, idx.size))
             flat = np.zeros((pairs[1].shape[1], idx.size))
             rows = max(256, BATCH_CELLS // idx.size)  # a block of rows by models stays in cache
             for lo in range(0, n, rows):
                 hi = min(n, lo + rows)
-                f, gc = _score_info(X[lo:hi], y[lo:hi], y_one[lo:hi], y_binary, Wa[lo:hi], bT, pairs[1][lo:hi])
+                f, gc, lc = _score_info(X[lo:hi], y[lo:hi], y_one[lo:hi], y_binary, Wa[lo:hi], bT,
+                                        pairs[1][lo:hi], chk)
                 flat += f
                 g += gc
+                if lc is not None:
+                    nll += lc
             iu = pairs[0]
             H[:, iu[0], iu[1]] = flat.T
             H[:, iu[1], iu[0]] = flat.T
             g = g.T
-        step = _solve(H, g, M[idx])
-        new = b + step
+        worse = np.zeros(idx.size, dtype=bool)
+        worse[chk] = _worse(nll, nll_base[idx[chk]])
+        full = np.full(idx.size, np.nan)
+        full[chk] = nll
+        if worse.any():
+            rej = idx[worse]
+            stuck = rej[halvings[rej] >= MAX_HALVINGS]
+            beta[stuck] = base[stuck]  # no shorter step decreases the likelihood: stop, not converged
+            active[stuck] = False
+            go = rej[halvings[rej] < MAX_HALVINGS]
+            halvings[go] += 1
+            step[go] *= 0.5
+            beta[go] = base[go] + step[go]
+            keep = ~worse
+            idx, H, g, b, full = idx[keep], H[keep], g[keep], b[keep], full[keep]
+            if idx.size == 0:
+                continue
+        base[idx], nll_base[idx], halvings[idx] = b, full, 0
+        steps[idx] += 1
+        st = _solve(H, g, M[idx])
+        new = b + st
+        step[idx] = st
         beta[idx] = new
-        done = np.abs(step).max(axis=1) <= tol * (1.0 + np.abs(new).max(axis=1))
+        done = np.abs(st).max(axis=1) <= tol * (1.0 + np.abs(new).max(axis=1))
         bad = ~np.isfinite(new).all(axis=1)
         converged[idx[done]] = True
-        active[idx[done | bad]] = False
-    return beta, converged, n_iter
+        active[idx[done | bad | (steps[idx] >= max_iter)]] = False
+        go = idx[~(done | bad | (steps[idx] >= max_iter))]
+        check[go] = ~_certain_descent(step[go], np.zeros((go.size, p)), colmax)
+        need = go[check[go] & np.isnan(nll_base[go])]
+        if need.size:  # a step to check from a point whose likelihood is not known yet
+            nll_base[need] = _nll_at(X, y, y_one, y_binary, np.ascontiguousarray(Wt[:, need]),
+                                     np.ascontiguousarray(base[need].T))
+    return beta, converged, int(steps.max(initial=0))
 
 
 def _solve(H: np.ndarray, g: np.ndarray, mask: np.ndarray) -> np.ndarray:
