@@ -91,6 +91,14 @@ def test_model_methods_equal_pandas(demo, rel, method):
             x = a.diagnostics[a.diagnostics["check"] == check].set_index(["stratum", "arm"])["value"]
             y = checks[checks["check"] == check].set_index(["stratum", "arm"])["value"]
             np.testing.assert_allclose(y.loc[x.index].to_numpy(float), x.to_numpy(float), rtol=1e-6)
+    # balance: every standardized mean difference of the in-memory Checks, before and after weighting
+    smd_a = a.diagnostics[a.diagnostics["check"].str.startswith("smd")]
+    smd_b = checks[checks["check"].str.startswith("smd")]
+    assert len(smd_a) > 0
+    assert list(zip(smd_a["stratum"], smd_a["check"])) == list(zip(smd_b["stratum"], smd_b["check"]))
+    np.testing.assert_allclose(smd_b["value"].to_numpy(float), smd_a["value"].to_numpy(float), atol=1e-8)
+    assert list(smd_a["warning"]) == list(smd_b["warning"])
+    assert any(check.startswith("smd after") for check in smd_b["check"]) == (method != "standardization")
 
 
 @pytest.mark.parametrize("method", ["crude", "mantel-haenszel", "standardization", "aipw"])

@@ -213,12 +213,27 @@ def _engine_diagnostics(result: Analysis, src, ins) -> pd.DataFrame:
                     extra_rows.append((label, "effective sample size", arm, ess,
                                        f"effective sample size under {ESS_SHARE:.0%} of the {arm} arm's rows: "
                                        "a few rows carry most of the weight" if ess < ESS_SHARE * n_arm else ""))
+    balance = result.extra.get("engine_balance") or []
+    if balance:
+        from ..diagnostics import BOTH, SMD_LIMIT
+
+        for s, label in enumerate(names + ["overall"]):
+            for term, before, after in balance:
+                extra_rows.append((label, f"smd before: {term}", BOTH, float(before[s]), ""))
+                if after is not None:
+                    bad = np.isfinite(after[s]) and abs(after[s]) > SMD_LIMIT
+                    extra_rows.append((label, f"smd after: {term}", BOTH, float(after[s]),
+                                       f"imbalance in {term} remains after weighting (|SMD| > {SMD_LIMIT})"
+                                       if bad else ""))
     # where the data lives: facts, not warnings (the warning column stays empty)
     extra_rows.append(("overall", f"rows scanned in {src.engine} (the data stays there)", "all",
                        float(ins.n_input), ""))
     extra_rows.append(("overall", f"full scans in {src.engine}", "all", float(src.scans), ""))
     more = pd.DataFrame(extra_rows, columns=DIAGNOSTIC_COLUMNS)
-    return pd.concat([keep, more], ignore_index=True)[DIAGNOSTIC_COLUMNS]
+    table = pd.concat([keep, more], ignore_index=True)[DIAGNOSTIC_COLUMNS]
+    order = {label: i for i, label in enumerate(names + ["overall"])}  # group by group, as in memory
+    rank = table["stratum"].map(order).fillna(len(order)).to_numpy()
+    return table.iloc[np.argsort(rank, kind="stable")].reset_index(drop=True)
 
 
 def _engine_heterogeneity(result: Analysis, spec: Spec) -> pd.DataFrame:

@@ -122,6 +122,7 @@ class Inspection:
     keys: list  # per modifier: (name, expr, edges or None, note or None)
     distinct: dict = field(default_factory=dict)
     ranges: dict = field(default_factory=dict)
+    zero_one: dict = field(default_factory=dict)  # numeric confounders holding only 0 and 1
 
 
 def _used(spec: Spec) -> list[str]:
@@ -185,7 +186,8 @@ def inspect(src, spec: Spec, *, confounder_levels: bool) -> Inspection:
     for i, c in enumerate(list(spec.strata) + list(spec.confounders)):
         if c in numeric_names:
             x = complete(_as_double(src, c))
-            items += [(f"lo{i}", fmt("MIN({})", x)), (f"hi{i}", fmt("MAX({})", x))]
+            items += [(f"lo{i}", fmt("MIN({})", x)), (f"hi{i}", fmt("MAX({})", x)),
+                      (f"nb{i}", fmt("SUM(CASE WHEN {} = 0.0 OR {} = 1.0 THEN 0 ELSE 1 END)", x, x))]
     flagged = fmt("SELECT *, ({}) AS __complete FROM {}", where, src.table)
     stats = src.run(fmt("SELECT {} FROM ({}) t", _select(items), flagged)).iloc[0]
     n_input = int(stats["n_input"])
@@ -247,14 +249,15 @@ def inspect(src, spec: Spec, *, confounder_levels: bool) -> Inspection:
     binary = int(stats["y_not01"] or 0) == 0
     sw = float(stats["sw"] or 0.0)
     centre = float(stats["swy"]) / sw if sw > 0 else 0.0
-    distinct, ranges = {}, {}
+    distinct, ranges, zero_one = {}, {}, {}
     for i, c in enumerate(list(spec.strata) + list(spec.confounders)):
         if c in counted:
             distinct[c] = int(stats[f"d{i}"])
         if c in numeric_names:
             ranges[c] = (float(stats[f"lo{i}"]), float(stats[f"hi{i}"]))
+            zero_one[c] = int(stats[f"nb{i}"] or 0) == 0
     keys = [_modifier_key(src, spec, name, where, distinct[name], ranges.get(name)) for name in spec.strata]
-    return Inspection(n_input, n_kept, notes, where, binary, centre, keys, distinct, ranges)
+    return Inspection(n_input, n_kept, notes, where, binary, centre, keys, distinct, ranges, zero_one)
 
 
 def _quantile_edges(src, spec: Spec, name: str, where: Frag, probs) -> np.ndarray:
@@ -382,17 +385,20 @@ class _Design:
     names: list
     notes: list
     shifts: list  # a value inside each column's range (mid-range; 0 for indicators), for stable sums
+    terms: list = field(default_factory=list)  # balance terms: (label, kind, design columns), see _balance
 
 
 def _design(src, spec: Spec, ins: Inspection) -> _Design:
     """Design columns of the confounders, coded as :func:`stratagem.estimate.design.confounder_design`."""
-    exprs, names, notes, shifts = [], [], [], []
+    exprs, names, notes, shifts, terms = [], [], [], [], []
     for col in spec.confounders:
         if src.kinds[col] in ("numeric", "float"):
             lo, hi = ins.ranges[col]
             if lo == hi:
                 notes.append(f"Confounder {col!r} is constant and was dropped.")
+                terms.append((str(col), "constant", []))
                 continue
+            terms.append((str(col), "binary" if ins.zero_one.get(col) else "numeric", [len(exprs)]))
             exprs.append(_as_double(src, col))
             names.append(str(col))
             shifts.append((lo + hi) / 2.0)
@@ -407,11 +413,14 @@ def _design(src, spec: Spec, ins: Inspection) -> _Design:
         if len(levels) < 2:
             notes.append(f"Confounder {col!r} has a single level and was dropped.")
             continue
+        first = len(exprs)
         for level in levels[1:]:
             exprs.append(fmt("(CASE WHEN {} = {} THEN 1.0 ELSE 0.0 END)", _col(src, col), value(level)))
             names.append(f"{col}={level}")
             shifts.append(0.0)
-    return _Design(exprs, names, notes, shifts)
+        terms.append((f"{col}={levels[0]}", "reference", list(range(first, len(exprs)))))
+        terms += [(f"{col}={level}", "binary", [first + i]) for i, level in enumerate(levels[1:])]
+    return _Design(exprs, names, notes, shifts, terms)
 
 
 class StratumTable:
@@ -550,6 +559,7 @@ def model_means(src, spec: Spec, ins: Inspection, prep, keys_to_stratum: dict, *
     outer += [("swya", raw("SUM(w * y * a)"))]
     outer += [(f"da{j}", fmt("SUM(w * a * {})", u[j])) for j in range(p)]
     outer += [(f"dy{j}", fmt("SUM(w * y * {})", u[j])) for j in range(p)]
+    outer += [(f"qa{j}", fmt("SUM(w * a * {} * {})", u[j], u[j])) for j in range(p)]  # balance checks
     m = _grouped(src, base, outer, ins.where, k, st=table())
     N = m["sw"].to_numpy()
     total_w = N.sum()
@@ -631,7 +641,8 @@ def model_means(src, spec: Spec, ins: Inspection, prep, keys_to_stratum: dict, *
             status[s] = "outcome model did not converge" + (" (separation)" if fit.sep_om[s] else "")
     okmask = np.array([st == OK for st in status])
     m1, m0, v11, v00, v10, diag = _means_and_variances(src, base, ins, Z, masks, fit, okmask, N, n1, name,
-                                                       pilot=m["swy"].to_numpy() / np.where(N > 0, N, 1.0))
+                                                       pilot=m["swy"].to_numpy() / np.where(N > 0, N, 1.0),
+                                                       shifts=shift)
     G = k + 1
     status.append(OK)
     if okmask.all():
@@ -654,11 +665,85 @@ def model_means(src, spec: Spec, ins: Inspection, prep, keys_to_stratum: dict, *
     gm = GroupMeans(n, nn1, nn0, m1, m0, v11, v00, v10, status, notes=notes)
     gm.extra["confounder_columns"] = tuple(names)
     gm.extra["engine_checks"] = diag["checks"]
+    gm.extra["engine_balance"] = _balance(des, m, diag["checks"], shift)
     if spec.interval == "bootstrap":
         S, layers = diag["rows"]
         gm.extra["engine_replicates"] = poisson_replicates(
             src, base[0], layers, S, ins.where, m1, m0, okmask, n_boot=spec.n_boot, seed=spec.seed)
     return gm
+
+
+def _smd(sums: dict, kind: str, shift: float, n_rows: np.ndarray) -> np.ndarray:
+    """Standardized mean difference per group from per-arm sums ``sums[arm] = (S0, S1, S2)`` of the
+    weights, the weighted shifted values and their squares; as :func:`stratagem.diagnostics.smd`
+    (Austin 2009): ``p (1 - p)`` for a 0/1 term, else the weighted variance scaled by ``n / (n - 1)``
+    with ``n`` the arm's rows (``n_rows[arm]``)."""
+    mean, var = {}, {}
+    with np.errstate(divide="ignore", invalid="ignore"):
+        for arm, (s0, s1, s2) in sums.items():
+            m = s1 / s0
+            if kind == "numeric":
+                var[arm] = np.maximum(s2 - s1 * m, 0.0) / s0 * n_rows[arm] / (n_rows[arm] - 1)
+            else:
+                p = m + shift
+                var[arm] = p * (1 - p)
+            mean[arm] = m
+        d = (mean[1] - mean[0]) / np.sqrt((var[1] + var[0]) / 2)
+    return np.where(np.isfinite(d), d, np.nan)
+
+
+def _balance(des: _Design, m: pd.DataFrame, checks: pd.DataFrame, shift: np.ndarray) -> list:
+    """Balance of every confounder term per stratum and overall: ``(label, before, after or None)``,
+    arrays over the K strata and the overall group, from the moments scan (unweighted) and the means
+    scan (with the inverse probability weights), in the terms and order of the in-memory Checks."""
+    p = len(des.exprs)
+    if not des.terms:
+        return []
+
+    def grp(x):  # strata, then overall
+        x = np.asarray(x, dtype=float)
+        return np.append(x, x.sum())
+
+    N, Na = m["sw"].to_numpy(float), m["swa"].to_numpy(float)
+    n_rows = {1: grp(Na), 0: grp(N - Na)}
+    raw_sums = {}
+    for j in range(p):
+        d, da = m[f"d{j}"].to_numpy(float), m[f"da{j}"].to_numpy(float)
+        iu = np.triu_indices(p)
+        qq = m[f"c{int(np.flatnonzero((iu[0] == j) & (iu[1] == j))[0])}"].to_numpy(float)
+        qa = m[f"qa{j}"].to_numpy(float)
+        before = {1: (grp(Na), grp(da), grp(qa)), 0: (grp(N - Na), grp(d - da), grp(qq - qa))}
+        after = None
+        if f"bal1_{j}" in checks:
+            after = {1: (grp(checks["sws1"]), grp(checks[f"bal1_{j}"]), grp(checks[f"bal1q_{j}"])),
+                     0: (grp(checks["sws0"]), grp(checks[f"bal0_{j}"]), grp(checks[f"bal0q_{j}"]))}
+        raw_sums[j] = (before, after)
+    out = []
+    for label, kind, cols in des.terms:
+        if kind == "constant":
+            nan = np.full(len(N) + 1, np.nan)
+            out.append((label, nan, nan if "sws1" in checks else None))
+            continue
+        if kind == "reference":  # indicator of the first level: 1 - the other indicators
+            results = []
+            for which in (0, 1):
+                parts = [raw_sums[j][which] for j in cols]
+                if parts[0] is None:
+                    results.append(None)
+                    continue
+                sums = {}
+                for arm in (0, 1):
+                    s0 = parts[0][arm][0]
+                    s1 = s0 - sum(part[arm][1] for part in parts)
+                    sums[arm] = (s0, s1, s1)
+                results.append(_smd(sums, "binary", 0.0, n_rows))
+            out.append((label, results[0], results[1]))
+            continue
+        j = cols[0]
+        before, after = raw_sums[j]
+        out.append((label, _smd(before, kind, shift[j], n_rows),
+                    _smd(after, kind, shift[j], n_rows) if after is not None else None))
+    return out
 
 
 #: Poisson(1) cumulative probabilities P(W <= j), j = 0..17 (beyond 17 the remaining mass is < 1e-16)
@@ -866,7 +951,7 @@ def _irls(src, base, ins, Z, masks, okmask, *, binary, need_om, tol, max_iter, s
     return Fitted(beta["ps"], beta["om"], conv["ps"], conv["om"], sep["ps"], sep["om"])
 
 
-def _means_and_variances(src, base, ins, Z, masks, fit, okmask, N, n1, name, pilot):
+def _means_and_variances(src, base, ins, Z, masks, fit, okmask, N, n1, name, pilot, shifts=()):
     """Potential-outcome means and the sums of squares and products of the influence functions per
     stratum. Standardization and IPW take two scans (the influence functions need constants solved
     from the first); AIPW takes one: its influence functions are ``psi - m``, so the sums of ``psi - c``
@@ -911,6 +996,12 @@ def _means_and_variances(src, base, ins, Z, masks, fit, okmask, N, n1, name, pil
                   ("swmax0", raw("MAX(CASE WHEN a = 0.0 AND w > 0 THEN sw END)")),
                   ("sws1", raw("SUM(w * a * sw)")), ("sws0", raw("SUM(w * (1.0 - a) * sw)")),
                   ("swss1", raw("SUM(w * a * sw * sw)")), ("swss0", raw("SUM(w * (1.0 - a) * sw * sw)"))]
+        for j, shift in enumerate(shifts):  # weighted sums of the design columns for the balance checks
+            uj = fmt("(x" + str(j) + " - {})", value(float(shift)))
+            outer += [(f"bal1_{j}", fmt("SUM(w * a * sw * {})", uj)),
+                      (f"bal1q_{j}", fmt("SUM(w * a * sw * {} * {})", uj, uj)),
+                      (f"bal0_{j}", fmt("SUM(w * (1.0 - a) * sw * {})", uj)),
+                      (f"bal0q_{j}", fmt("SUM(w * (1.0 - a) * sw * {} * {})", uj, uj))]
     zt = [z.text for z in Z]  # Z holds column names only ("1.0", "z0", ..., "a")
     if name == "standardization":
         d1, d0, v = ("q1 * q1r", "q0 * q0r", "mu * mur") if binary else ("1.0", "1.0", "1.0")
@@ -988,6 +1079,6 @@ def _means_and_variances(src, base, ins, Z, masks, fit, okmask, N, n1, name, pil
             continue
         v11[s], v00[s], v10[s] = (var[c].iloc[s] / N[s] ** 2 for c in ("f1f1", "f0f0", "f1f0"))
     diag = {c: var[c].to_numpy() for c in ("f1f1", "f0f0", "f1f0", "f1", "f0")}
-    diag["checks"] = got.drop(columns=[c for c in got.columns if not c.startswith(("emin", "emax", "sw"))])
+    diag["checks"] = got.drop(columns=[c for c in got.columns if not c.startswith(("emin", "emax", "sw", "bal"))])
     diag["rows"] = (S, layers + [fdef])  # row columns f1, f0: the influence functions (for replicates)
     return m1, m0, v11, v00, v10, diag
