@@ -95,6 +95,14 @@ function fmtCount(value) {
   return Math.round(value).toLocaleString("en-US");
 }
 
+/** A value in the Checks: counts (whole numbers) without decimals, others to 3 decimals; both
+ * with thousands separators. */
+export function fmtCheck(value) {
+  if (value === null || value === undefined || !Number.isFinite(value)) return "—";
+  if (Number.isInteger(value)) return value.toLocaleString("en-US");
+  return value.toLocaleString("en-US", { minimumFractionDigits: 3, maximumFractionDigits: 3 });
+}
+
 function fmtP(p) {
   if (p === null || p === undefined || !Number.isFinite(p)) return "";
   return p < 0.001 ? "p < 0.001" : `p = ${p.toFixed(3)}`;
@@ -824,12 +832,25 @@ function render({ model, el }) {
       return;
     }
     const warned = rows.filter((r) => r.warning);
+    const engine = result.engine || {};
+    if (engine.engine) {
+      // Where the data lives is a fact of the run, not a check: said first, in words.
+      checks.append(h("p", { class: "sg-source" },
+        `The data stayed in ${engine.engine}: ${fmtCount(engine.rows)} rows scanned in ` +
+        `${fmtCount(engine.scans)} full scan(s); only aggregates came back to Python.`));
+    }
     checks.append(h("p", { class: warned.length ? "sg-warn-count" : "sg-hint" },
       warned.length ? `${warned.length} warning(s): read them before trusting the estimates.` : "No warnings."));
+    if (rows.some((r) => String(r.check ?? "").startsWith("smd "))) {
+      checks.append(h("p", { class: "sg-hint" },
+        "Balance: smd is the standardized mean difference of a confounder between the exposed and " +
+        "unexposed (Austin 2009), before and after inverse probability weighting; " +
+        "|smd| above 0.1 after weighting is flagged."));
+    }
     const cols = Object.keys(rows[0]);
     const table = h("table");
     const hr = h("tr");
-    for (const c of cols) hr.append(h("th", { scope: "col" }, c));
+    for (const c of cols) hr.append(h("th", { scope: "col", class: c === "value" ? "sg-num" : "" }, c));
     const thead = h("thead");
     thead.append(hr);
     const tbody = h("tbody");
@@ -838,7 +859,8 @@ function render({ model, el }) {
       if (r.warning) tr.classList.add("sg-warning");
       for (const c of cols) {
         const v = r[c];
-        tr.append(h("td", { "data-field": c }, typeof v === "number" ? fmt(v) : String(v ?? "")));
+        tr.append(h("td", { "data-field": c, class: typeof v === "number" ? "sg-num" : "" },
+          typeof v === "number" ? fmtCheck(v) : String(v ?? "")));
       }
       tbody.append(tr);
     }

@@ -85,7 +85,9 @@ def analysis_payload(analysis: Analysis, data_name: str = "df") -> dict:
     ``ratio`` (bool: log axis), ``null`` (no-effect value), ``level``, ``scale_note``, ``title``,
     ``rows`` (strata then overall; fields of :data:`ROW_FIELDS` plus ``levels``), ``heterogeneity``,
     ``response_types``, ``diagnostics`` (records of those tables), ``notes``, ``caution``,
-    ``recipe`` (:meth:`Analysis.recipe` text), ``n_input``, ``n_dropped``.
+    ``recipe`` (:meth:`Analysis.recipe` text), ``n_input``, ``n_dropped``, ``engine`` (a copy of
+    ``analysis.extra["engine"]``: which engine held the data, its full scans and rows; empty for a
+    table in memory).
     """
     spec = analysis.spec
     return {
@@ -111,6 +113,7 @@ def analysis_payload(analysis: Analysis, data_name: str = "df") -> dict:
         "recipe": analysis.recipe(data_name),
         "n_input": int(analysis.n_input),
         "n_dropped": int(analysis.n_dropped),
+        "engine": plain(dict(analysis.extra.get("engine") or {})),
     }
 
 
