@@ -289,7 +289,10 @@ def _modifier_levels(
         )
     if isinstance(s.dtype, pd.CategoricalDtype):
         cats = [c for c in s.cat.categories if (s == c).any()]
-        codes = pd.Categorical(s, categories=cats).codes
+        # recode through the column's own codes: pd.Categorical(s, categories=cats) with unused
+        # categories left out is deprecated by pandas (Pandas4Warning)
+        raw = s.cat.codes.to_numpy()
+        codes = np.where(raw >= 0, pd.Index(cats).get_indexer(s.cat.categories)[raw], -1)
     else:
         uniq = pd.unique(s)
         try:

@@ -410,3 +410,58 @@ def test_mantel_haenszel_counts_table_equals_its_expanded_rows_with_a_numeric_co
     a = sg.analyze(table, counts="w", **fields).overall
     b = sg.analyze(expanded, **fields).overall
     assert a["estimate"] == pytest.approx(b["estimate"], rel=1e-10)
+
+
+# -- categorical columns with unused categories; huge counts with warnings as errors ---------------
+
+
+@pytest.mark.parametrize("method", method_params(("crude",) + MODEL_METHODS))
+def test_categorical_columns_with_unused_categories_raise_no_pandas_warning(method):
+    """A categorical confounder and modifier whose dtype lists categories no row has: recoding them
+    must not build ``pd.Categorical`` with values outside its categories (a Pandas4Warning now, an
+    error in a future pandas), and the result equals that of the same columns as plain strings."""
+    rng = np.random.default_rng(12)
+    df = _table(rng, n=600)
+    df["m"] = rng.choice(["lo", "mid"], len(df))
+    plain = df.copy()
+    df["c2"] = pd.Categorical(df["c2"], categories=["p", "q", "r", "never"])
+    df["m"] = pd.Categorical(df["m"], categories=["hi", "lo", "mid", "unused"])
+    fields = dict(exposure="x", outcome="y", strata=("m",), method=method)
+    if method != "crude":
+        fields["confounders"] = ("c1", "c2")
+    with warnings.catch_warnings():
+        warnings.simplefilter("error", DeprecationWarning)  # Pandas4Warning is one
+        warnings.simplefilter("error", FutureWarning)
+        a = sg.analyze(df, **fields)
+    b = sg.analyze(plain, **fields)
+    assert list(a.strata["status"]) == ["ok", "ok"]
+    pd.testing.assert_frame_equal(a.to_frame(), b.to_frame(), check_exact=False, rtol=1e-12)
+    if method != "crude":
+        pd.testing.assert_frame_equal(a.diagnostics, b.diagnostics, check_exact=False, rtol=1e-12)
+
+
+@pytest.mark.parametrize("method", method_params(MODEL_METHODS))
+def test_extreme_frequency_weights_run_without_runtime_warnings(method):
+    """Counts of a million on a few rows: the propensity model converges (no runaway Newton steps),
+    and the checks table handles the resulting huge or infinite weights without any warning. The
+    row is either estimated and equal to statsmodels, or flagged for a stated reason."""
+    for random_state in (3, 7):
+        rng = np.random.default_rng(random_state)
+        df = _table(rng, n=300)
+        df["n"] = np.where(rng.random(len(df)) < 0.05, 1_000_000, 1)
+        with warnings.catch_warnings():
+            warnings.simplefilter("error")
+            a = sg.analyze(df, exposure="x", outcome="y", confounders=("c1", "c2"), method=method,
+                           counts="n", measure="rd")
+        assert "did not converge" not in a.overall["status"]
+        assert_ok_rows_finite(a)
+        try:
+            m1, m0 = reference_means(df, method, ("c1", "c2"), weights=df["n"])
+        except NoAnswer:
+            assert flagged(a)
+            continue
+        if a.overall["status"] != "ok":
+            assert flagged(a)
+        else:
+            assert a.overall["mean_exposed"] == pytest.approx(m1, rel=1e-4)
+            assert a.overall["mean_unexposed"] == pytest.approx(m0, rel=1e-4)

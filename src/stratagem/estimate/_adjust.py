@@ -194,9 +194,23 @@ def _level_codes(confounders, order: np.ndarray) -> list:
             labels = _levels(s)
             if len(labels) < 2:
                 continue
-            codes = pd.Categorical(s, categories=labels).codes.astype(np.int64)
+            codes = _codes_in(s, labels)
         out.append((str(col), [str(x) for x in labels], codes[order]))
     return out
+
+
+def _codes_in(s: pd.Series, labels: list) -> np.ndarray:
+    """Position of each value of ``s`` in ``labels`` (int64; -1 for a missing value).
+
+    A categorical column is recoded through its own codes: building ``pd.Categorical(s,
+    categories=labels)`` from a categorical whose unused categories are left out of ``labels``
+    is deprecated by pandas (Pandas4Warning) and will raise in a future version.
+    """
+    if isinstance(s.dtype, pd.CategoricalDtype):
+        lookup = pd.Index(labels).get_indexer(s.cat.categories)  # old code -> position or -1
+        raw = s.cat.codes.to_numpy()
+        return np.where(raw >= 0, lookup[raw], -1).astype(np.int64)
+    return pd.Index(labels).get_indexer(s).astype(np.int64)
 
 
 
