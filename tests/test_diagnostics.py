@@ -184,3 +184,73 @@ def test_analyze_carries_the_table(demo):
     for row in a.strata.itertuples():
         assert value(d, row.stratum, "n", "exposed") == row.n_exposed
     assert any(c.startswith("smd before: district=") for c in d["check"])
+
+
+# -- huge and infinite weights ----------------------------------------------------------------------
+
+
+def _weighted_case(random_state=0, n=200):
+    rng = np.random.default_rng(random_state)
+    df = pd.DataFrame({
+        "x": np.tile([0, 1], n // 2),
+        "y": rng.integers(0, 2, n),
+        "z": rng.normal(size=n),
+        "d": rng.choice(["p", "q", "r"], n),
+        "m": np.repeat(["a", "b"], n // 2),
+        "n": np.where(rng.random(n) < 0.05, 1_000_000, 1),
+    })
+    ipw = rng.uniform(1.0, 5.0, n)
+    return df, ipw
+
+
+@pytest.mark.parametrize("scale", [1e150, 1e-150])
+def test_huge_weights_and_counts_give_the_same_table_without_warnings(scale):
+    """Checks are ratios of weighted sums: multiplying every IP weight by a constant changes
+    nothing, and weights near 1e150 with counts of 1e6 (f w^2 ~ 1e306 per row, so the sums would
+    overflow) give no RuntimeWarning."""
+    import warnings
+
+    df, ipw = _weighted_case()
+    prep = prep_of(df, confounders=("z", "d"), strata=("m",), counts="n")
+    base = diagnostics_table(prep, fake_means(prep, weights=ipw, propensity=np.full(len(df), 0.5)))
+    with warnings.catch_warnings():
+        warnings.simplefilter("error")
+        big = diagnostics_table(prep, fake_means(prep, weights=ipw * scale,
+                                                 propensity=np.full(len(df), 0.5)))
+    weighted = ~big["check"].isin(["largest weight"])
+    np.testing.assert_allclose(big.loc[weighted, "value"].to_numpy(float),
+                               base.loc[weighted, "value"].to_numpy(float), rtol=1e-10, atol=1e-12)
+    assert (big.loc[weighted, "warning"] == base.loc[weighted, "warning"]).all()
+    ess = big[big["check"] == "effective sample size"]["value"].to_numpy(float)
+    assert np.isfinite(ess).all() and (ess > 0).all()
+    with warnings.catch_warnings():
+        warnings.simplefilter("error")
+        w = ipw * scale
+        f = df["n"].to_numpy(float)
+        assert effective_sample_size(w, f) == pytest.approx(effective_sample_size(ipw, f), rel=1e-12)
+        sel = df["x"].to_numpy()
+        assert smd(df["z"], sel, w, f) == pytest.approx(smd(df["z"], sel, ipw, f), rel=1e-12)
+
+
+def test_infinite_weights_leave_their_groups_weighted_checks_undefined_without_warnings():
+    import warnings
+
+    df, ipw = _weighted_case(1)
+    first = np.flatnonzero((df["m"] == "a").to_numpy() & (df["x"] == 0).to_numpy())[0]
+    ipw[first] = np.inf  # a propensity of exactly 1 in stratum m=a, unexposed arm
+    prep = prep_of(df, confounders=("z", "d"), strata=("m",), counts="n")
+    with warnings.catch_warnings():
+        warnings.simplefilter("error")
+        t = diagnostics_table(prep, fake_means(prep, weights=ipw, propensity=np.full(len(df), 0.5)))
+    assert np.isnan(value(t, "m=a", "effective sample size", "unexposed"))
+    assert np.isnan(value(t, "overall", "effective sample size", "unexposed"))
+    assert np.isnan(value(t, "m=a", "smd after: z"))
+    assert np.isfinite(value(t, "m=a", "effective sample size", "exposed"))
+    # the other stratum is untouched: its checks equal those computed without the broken stratum
+    clean = ipw.copy()
+    clean[first] = 1.0
+    ref = diagnostics_table(prep, fake_means(prep, weights=clean, propensity=np.full(len(df), 0.5)))
+    for check, arm in (("effective sample size", "unexposed"), ("smd after: z", None),
+                       ("smd after: d=q", None)):
+        assert value(t, "m=b", check, arm) == pytest.approx(value(ref, "m=b", check, arm), rel=1e-9)
+        assert np.isfinite(value(t, "m=b", check, arm))

@@ -56,12 +56,28 @@ ARMS = ("unexposed", "exposed")  # arm index 0, 1
 BOTH = "exposed vs unexposed"
 
 
+def _unit_scale(w: np.ndarray) -> np.ndarray:
+    """``w`` times the power of two that brings its largest finite magnitude into [0.5, 1).
+
+    Squares and sums of the scaled weights cannot overflow, and as a power of two is exact in
+    binary floating point, every scale-free quantity (a ratio of weighted sums: means, variances,
+    Kish's ESS) comes out bit for bit as from the unscaled weights when those do not overflow.
+    """
+    finite = np.abs(w[np.isfinite(w)])
+    top = finite.max(initial=0.0)
+    if top == 0.0:
+        return w
+    return np.ldexp(w, -int(np.frexp(top)[1]))
+
+
 def effective_sample_size(weights: np.ndarray, freq: np.ndarray | None = None) -> float:
     """Kish's effective sample size ``(sum f w)^2 / sum f w^2`` (Kish 1965, *Survey Sampling*).
 
     ``freq`` are row frequencies (each row stands for that many individuals with weight ``w``).
+    The weights are scaled by a power of two first (:func:`_unit_scale`), so huge weights do not
+    overflow ``w^2``.
     """
-    w = np.asarray(weights, dtype=float)
+    w = _unit_scale(np.asarray(weights, dtype=float))
     f = np.ones_like(w) if freq is None else np.asarray(freq, dtype=float)
     s2 = np.sum(f * w * w)
     return float(np.sum(f * w) ** 2 / s2) if s2 > 0 else float("nan")
@@ -74,7 +90,7 @@ def smd(x, arm, weights=None, freq=None, *, binary: bool | None = None) -> float
     what :func:`diagnostics_table` computes for every group at once.
     """
     x, arm = np.asarray(x, dtype=float), np.asarray(arm, dtype=float)
-    v = np.ones_like(x) if weights is None else np.asarray(weights, dtype=float)
+    v = np.ones_like(x) if weights is None else _unit_scale(np.asarray(weights, dtype=float))
     f = np.ones_like(x) if freq is None else np.asarray(freq, dtype=float)
     binary = bool(np.isin(x, (0.0, 1.0)).all()) if binary is None else binary
     stats = []
@@ -126,7 +142,8 @@ def _terms(confounders: pd.DataFrame):
             x = s.to_numpy(dtype=float)
             yield "numeric", str(name), x, bool(((x == 0.0) | (x == 1.0)).all())
         else:
-            if isinstance(s.dtype, pd.CategoricalDtype):
+            if isinstance(s.dtype, pd.CategoricalDtype):  # categories no row has get no SMD rows
+                s = s.cat.remove_unused_categories()
                 codes, levels = s.cat.codes.to_numpy(), list(s.cat.categories)
             else:
                 codes, levels = pd.factorize(s, sort=True)
@@ -210,12 +227,21 @@ def diagnostics_table(prep: Prepared, gm: GroupMeans) -> pd.DataFrame:
         share = np.append(per, out_all.sum()) / n_rows.sum(axis=1)
         add("outside common support", "all", share, "")
 
+    broken = None
     if ipw is not None:
-        v = np.asarray(ipw, dtype=float)
-        top = groups.extreme(v, "max")
+        raw = np.asarray(ipw, dtype=float)
+        top = groups.extreme(raw, "max")
+        # A row whose weight is infinite or NaN (its stratum's propensities reached 0 or 1) leaves
+        # the weighted checks of its (group, arm) undefined: they are NaN there, and the row adds
+        # nothing to the sums (no inf - inf). The rest are scaled by a power of two, so sums of
+        # f w^2 cannot overflow however large the weights (exact: the ratios are unchanged).
+        bad = ~np.isfinite(raw) & (f > 0)
+        broken = groups.sums(bad.astype(float)) > 0  # (G, 2)
+        v = _unit_scale(np.where(bad, 0.0, np.nan_to_num(raw, nan=0.0, posinf=0.0, neginf=0.0)))
         s1, s2 = groups.sums(f * v), groups.sums(f * v * v)
         with np.errstate(divide="ignore", invalid="ignore"):
             ess = s1 * s1 / s2
+        ess[broken] = np.nan
         for j in (1, 0):
             add("largest weight", ARMS[j], top[:, j], "")
         for j in (1, 0):
@@ -241,6 +267,7 @@ def diagnostics_table(prep: Prepared, gm: GroupMeans) -> pd.DataFrame:
         for j, label in enumerate(labels):
             add(f"smd before: {label}", BOTH, before[:, j], "")
             if after is not None:
+                after[broken.any(axis=1), j] = np.nan
                 add(f"smd after: {label}", BOTH, after[:, j],
                     np.where(np.abs(after[:, j]) > SMD_LIMIT,
                              f"imbalance in {label} remains after weighting (|SMD| > {SMD_LIMIT})", ""))
