@@ -194,8 +194,10 @@ def _engine_diagnostics(result: Analysis, src, ins) -> pd.DataFrame:
         arms = (("exposed", "1"), ("unexposed", "0"))
         whole = {c: (checks[c].min() if c.startswith("emin") else checks[c].max() if "max" in c
                      else checks[c].sum()) for c in checks.columns}
-        for s, label in enumerate(names + ["overall"]):
+        for s, label in enumerate(names + ["overall"]):  # the rows and order of diagnostics.py
             row = checks.iloc[s] if s < len(names) else pd.Series(whole)
+            n_arm = {arm: keep[(keep["stratum"] == label) & (keep["arm"] == arm)]["value"] for arm, _ in arms}
+            n_arm = {arm: float(v.iloc[0]) if len(v) else np.nan for arm, v in n_arm.items()}
             for arm, j in arms:
                 lo, hi = float(row[f"emin{j}"]), float(row[f"emax{j}"])
                 extra_rows.append((label, "propensity min", arm, lo,
@@ -204,15 +206,19 @@ def _engine_diagnostics(result: Analysis, src, ins) -> pd.DataFrame:
                 extra_rows.append((label, "propensity max", arm, hi,
                                    f"propensities above {PROPENSITY_LIMITS[1]} in the {arm} arm: positivity "
                                    "doubtful" if hi > PROPENSITY_LIMITS[1] else ""))
-                if f"swmax{j}" in checks:
+            outside = float(row["out_s"]) if s < len(names) else float(checks["out_all"].sum())
+            extra_rows.append((label, "outside common support", "all", outside / sum(n_arm.values()), ""))
+            if "swmax1" in checks:
+                ess = {}
+                for arm, j in arms:
                     s1, s2 = float(row[f"sws{j}"]), float(row[f"swss{j}"])
-                    ess = s1 * s1 / s2 if s2 > 0 else np.nan
-                    n_arm = keep[(keep["stratum"] == label) & (keep["arm"] == arm)]["value"]
-                    n_arm = float(n_arm.iloc[0]) if len(n_arm) else np.nan
+                    ess[arm] = s1 * s1 / s2 if s2 > 0 else np.nan
                     extra_rows.append((label, "largest weight", arm, float(row[f"swmax{j}"]), ""))
-                    extra_rows.append((label, "effective sample size", arm, ess,
+                for arm, j in arms:
+                    extra_rows.append((label, "effective sample size", arm, ess[arm],
                                        f"effective sample size under {ESS_SHARE:.0%} of the {arm} arm's rows: "
-                                       "a few rows carry most of the weight" if ess < ESS_SHARE * n_arm else ""))
+                                       "a few rows carry most of the weight" if ess[arm] < ESS_SHARE * n_arm[arm]
+                                       else ""))
     balance = result.extra.get("engine_balance") or []
     if balance:
         from ..diagnostics import BOTH, SMD_LIMIT

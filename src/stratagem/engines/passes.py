@@ -673,6 +673,24 @@ def model_means(src, spec: Spec, ins: Inspection, prep, keys_to_stratum: dict, *
     return gm
 
 
+def _support_sums(got: pd.DataFrame, S: StratumTable) -> list:
+    """Aggregates counting the frequency of rows outside common support: ``out_s`` per stratum (the
+    overlap ``[max(min_0, min_1), min(max_0, max_1)]`` of the arms' propensity ranges in the
+    stratum) and ``out_all`` (the overlap over all strata). An arm without rows bounds nothing."""
+    lo1, lo0 = got["emin1"].to_numpy(float), got["emin0"].to_numpy(float)
+    hi1, hi0 = got["emax1"].to_numpy(float), got["emax0"].to_numpy(float)
+    with np.errstate(invalid="ignore"):
+        low, high = np.fmax(lo1, lo0), np.fmin(hi1, hi0)
+        low_all = max(np.nanmin(lo1, initial=np.inf), np.nanmin(lo0, initial=np.inf))
+        high_all = min(np.nanmax(hi1, initial=-np.inf), np.nanmax(hi0, initial=-np.inf))
+    low = np.where(np.isnan(low), -np.inf, low)
+    high = np.where(np.isnan(high), np.inf, high)
+    return [("out_s", fmt("SUM(CASE WHEN e < {} OR e > {} THEN w ELSE 0.0 END)", _per_stratum(low, S),
+                          _per_stratum(high, S))),
+            ("out_all", fmt("SUM(CASE WHEN e < {} OR e > {} THEN w ELSE 0.0 END)", value(float(low_all)),
+                            value(float(high_all))))]
+
+
 def _smd(sums: dict, kind: str, shift: float, n_rows: np.ndarray) -> np.ndarray:
     """Standardized mean difference per group from per-arm sums ``sums[arm] = (S0, S1, S2)`` of the
     weights, the weighted shifted values and their squares; as :func:`stratagem.diagnostics.smd`
@@ -1069,10 +1087,16 @@ def _means_and_variances(src, base, ins, Z, masks, fit, okmask, N, n1, name, pil
         # the influence functions themselves, for bootstrap replicates: psi - m = g - G / N
         fdef = [("f1", fmt("(g1 - {})", _per_stratum(G1 / safeN, S))),
                 ("f0", fmt("(g0 - {})", _per_stratum(G0 / safeN, S)))]
+    # common support: the frequency of rows whose propensity lies outside the overlap of the two arms'
+    # ranges, in their stratum and overall (as diagnostics.py); bounds from the scan above
+    support = _support_sums(got, S)
     if name != "aipw":
         outer = [("f1f1", raw("SUM(w * f1 * f1)")), ("f0f0", raw("SUM(w * f0 * f0)")),
                  ("f1f0", raw("SUM(w * f1 * f0)")), ("f1", raw("SUM(w * f1)")), ("f0", raw("SUM(w * f0)"))]
-        var = _grouped(src, base[0], outer, ins.where, k, layers=layers + [fdef], st=S)
+        var = _grouped(src, base[0], outer + support, ins.where, k, layers=layers + [fdef], st=S)
+        outside = var[["out_s", "out_all"]]
+    else:  # AIPW's one scan could not know the bounds: one more, light scan
+        outside = _grouped(src, base[0], support, ins.where, k, layers=layers[:3], st=S)
     for s in range(k):
         if not okmask[s]:
             m1[s] = m0[s] = np.nan
@@ -1080,5 +1104,7 @@ def _means_and_variances(src, base, ins, Z, masks, fit, okmask, N, n1, name, pil
         v11[s], v00[s], v10[s] = (var[c].iloc[s] / N[s] ** 2 for c in ("f1f1", "f0f0", "f1f0"))
     diag = {c: var[c].to_numpy() for c in ("f1f1", "f0f0", "f1f0", "f1", "f0")}
     diag["checks"] = got.drop(columns=[c for c in got.columns if not c.startswith(("emin", "emax", "sw", "bal"))])
+    diag["checks"]["out_s"] = outside["out_s"].to_numpy(float)
+    diag["checks"]["out_all"] = outside["out_all"].to_numpy(float)
     diag["rows"] = (S, layers + [fdef])  # row columns f1, f0: the influence functions (for replicates)
     return m1, m0, v11, v00, v10, diag
