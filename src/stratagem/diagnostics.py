@@ -292,11 +292,16 @@ def diagnostics_fields(prep: Prepared, spec: Spec, gm: GroupMeans, fields: dict)
     """
     table = diagnostics_table(prep, gm)
     out = {"diagnostics": table}
-    warned = table[table["warning"] != ""]
-    if len(warned):
-        strata = warned["stratum"].nunique()
-        out["notes"] = tuple(fields.get("notes", ())) + (
-            f"Checks: {len(warned)} warning(s) in {strata} group(s) "
-            "(positivity, weights, balance or small arms); see Analysis.diagnostics.",
-        )
+    note = warnings_note(table)
+    if note:
+        out["notes"] = tuple(fields.get("notes", ())) + (note,)
     return out
+
+
+def warnings_note(table: pd.DataFrame) -> str:
+    """The one-line summary of a Checks table's warnings, or ``""`` when none warns."""
+    warned = table[table["warning"] != ""]
+    if not len(warned):
+        return ""
+    return (f"Checks: {len(warned)} warning(s) in {warned['stratum'].nunique()} group(s) "
+            "(positivity, weights, balance or small arms); see Analysis.diagnostics.")

@@ -97,6 +97,7 @@ def test_model_methods_equal_pandas(demo, rel, method):
     np.testing.assert_allclose(same["value"].to_numpy(float), mem["value"].to_numpy(float), rtol=1e-6, atol=1e-8)
     assert list(same["warning"]) == list(mem["warning"])
     assert "outside common support" in set(same["check"])
+    assert [n for n in b.notes if n.startswith("Checks: ")] == [n for n in a.notes if n.startswith("Checks: ")]
     smd_b = same[same["check"].str.startswith("smd")]
     assert len(smd_b) > 0
     assert any(check.startswith("smd after") for check in smd_b["check"]) == (method != "standardization")

@@ -130,7 +130,12 @@ def analyze_engine(data: Any, spec: Spec, progress: Callable[[float], None] | No
 
         result = analyze(table, cspec, progress=progress)
     notes = list(result.notes)[len(bins):]  # the table of counts' own binning notes, replaced below
-    notes = list(ins.notes) + key_notes + mh_notes + notes
+    notes = list(ins.notes) + key_notes + mh_notes + [n for n in notes if not n.startswith("Checks: ")]
+    diagnostics = _engine_diagnostics(result, src, ins)
+    from ..diagnostics import warnings_note
+
+    if warnings_note(diagnostics):  # counted on the engine's Checks, not the table of counts'
+        notes.append(warnings_note(diagnostics))
     scanned = f"{src.scans} full scan(s) of {ins.n_input:,} rows"
     notes.append(f"The data stayed in {src.engine}: {scanned}; only aggregates came back to Python.")
     extra = dict(result.extra)
@@ -142,7 +147,7 @@ def analyze_engine(data: Any, spec: Spec, progress: Callable[[float], None] | No
         notes=tuple(notes),
         n_input=ins.n_input,
         n_dropped=ins.n_input - ins.n_kept,
-        diagnostics=_engine_diagnostics(result, src, ins),
+        diagnostics=diagnostics,
         heterogeneity=_engine_heterogeneity(result, resolved),
         extra=extra,
     )
