@@ -75,6 +75,7 @@ def test_spread_matches_influence_function_standard_errors(demo, method):
     # the standard deviation of 2000 replicates is within about 1.6% of the truth (one standard error)
     np.testing.assert_allclose(m1_b.std(axis=0, ddof=1), np.sqrt(cov["v11"]), rtol=0.08)
     np.testing.assert_allclose(m0_b.std(axis=0, ddof=1), np.sqrt(cov["v00"]), rtol=0.08)
+    assert any(n.startswith("Bootstrap in DuckDB: 2,000 Poisson-weighted replicates") for n in res.notes)
     wald = analyze_engine(_rel(demo), spec.replace(interval="wald"))
     np.testing.assert_allclose(res.strata["se"], wald.strata["se"], rtol=0.1)
     assert res.overall["estimate"] == pytest.approx(wald.overall["estimate"], abs=1e-12)

@@ -170,6 +170,11 @@ def _model_analysis(src, spec: Spec, cspec: Spec, ins, table: pd.DataFrame) -> A
     frame = _effects_table(prep, spec, gm, replicates)
     strata = frame.iloc[:-1].reset_index(drop=True) if spec.strata else frame.iloc[0:0]
     overall = frame.iloc[-1][OVERALL_FIELDS].rename("overall")
+    if replicates is not None:
+        gm.notes.append(
+            f"Bootstrap in {src.engine}: {spec.n_boot:,} Poisson-weighted replicates (every row a Poisson(1) "
+            "frequency), each the one-step update of the estimate through its influence functions rather "
+            "than a refit of the models; percentile intervals.")
     fields = dict(
         spec=spec, overall=overall, strata=strata, notes=tuple(prep.notes) + tuple(gm.notes),
         n_input=ins.n_input, n_dropped=ins.n_input - ins.n_kept,
