@@ -33,6 +33,7 @@ from collections.abc import Mapping, Sequence
 from typing import Any
 
 import anywidget
+import numpy as np
 import pandas as pd
 import traitlets
 
@@ -44,7 +45,7 @@ from ..spec import Spec
 from .display import SnapshotDisplay
 from .payload import Target, analysis_payload, run_transport
 from .snapshot import placeholder_html, snapshot_html
-from .worker import Outcome, Runner, kernel_post
+from .worker import Outcome, Runner, Superseded, kernel_post
 
 __all__ = ["Explorer", "front_end_file"]
 
@@ -101,18 +102,33 @@ def _fingerprint(data: pd.DataFrame, spec: Spec) -> bytes | None:
 
     Results are reused only when the table's columns still hash the same, so a table changed in
     place is analysed again. Row order counts (the bootstrap draws rows by position).
+
+    Each column is hashed on its own (``pandas.util.hash_pandas_object``, no copy of the columns)
+    and the per-row hashes are folded column by column with a multiply-add in 64-bit wrapping
+    arithmetic, which keeps their order; one digest of the folded array follows.
     """
     names = [spec.exposure, spec.outcome, *spec.confounders, *spec.strata, spec.counts,
              *(spec.potential_outcomes or ())]
     cols = [c for c in dict.fromkeys(names) if c is not None and c in data.columns]
+    folded = np.zeros(len(data), dtype=np.uint64)
+    dtypes = []
     try:
-        part = data[cols]
-        rows = pd.util.hash_pandas_object(part, index=False).to_numpy()
+        for c in cols:
+            column = data[c]
+            hashed = pd.util.hash_pandas_object(column, index=False).to_numpy()
+            if hashed.ndim != 1 or hashed.dtype != np.uint64:  # e.g. a repeated column name
+                return None
+            folded *= _FOLD
+            folded += hashed
+            dtypes.append(str(column.dtype))
     except Exception:  # e.g. unhashable objects in a column: no reuse, always recompute
         return None
-    digest = hashlib.blake2b(rows.tobytes(), digest_size=16)
-    digest.update(repr((len(data), cols, [str(t) for t in part.dtypes])).encode())
+    digest = hashlib.blake2b(memoryview(folded).cast("B"), digest_size=16)
+    digest.update(repr((len(data), cols, dtypes)).encode())
     return digest.digest()
+
+
+_FOLD = np.uint64(0x9E3779B97F4A7C15)  # odd multiplier (2^64 / golden ratio) folding column hashes
 
 
 def _friendly(exc: BaseException) -> str:
@@ -417,7 +433,7 @@ class Explorer(SnapshotDisplay, anywidget.AnyWidget):
         self._runner.run_here(self._job, self._base)
 
     # -- the job (worker thread) ---------------------------------------------------------------------
-    def _job(self, spec: Spec, check) -> tuple[Analysis, dict, str]:
+    def _job(self, spec: Spec, check) -> tuple:
         check()
         self._last_progress = (0.0, time.monotonic())
 
@@ -429,23 +445,54 @@ class Explorer(SnapshotDisplay, anywidget.AnyWidget):
                 self._last_progress = (fraction, now)
                 self._post(lambda: self._progress(check, fraction))
 
-        key = (spec.to_json(), _fingerprint(self._data, spec)) if self._cache_size >= 2 else None
-        entry = self._recall(key)
+        # A shallow copy: under pandas' copy-on-write an edit of the user's table after this point
+        # does not reach it, so the analysis and the digest it is kept under see the same values.
+        data = self._data.copy(deep=False) if isinstance(self._data, pd.DataFrame) else self._data
+        wanted = spec.to_json() if self._cache_size >= 2 else None
+        # The digest reads every used column (ms at 1e5 rows): computed before the analysis only
+        # when a result for this choice is kept (it may be reused); otherwise after publishing.
+        digest = _fingerprint(data, spec) if self._kept(wanted) else None
+        entry = self._recall((wanted, digest))
+        store = None
         if entry is None:
-            analysis = analyze(self._data, spec, progress=progress)
+            analysis = analyze(data, spec, progress=progress)
             check()
             entry = [analysis, analysis_payload(analysis, self._data_name), None, None]
-            self._remember(key, entry)
-            if key is not None and analysis.spec != spec:  # also under the resolved choice
-                self._remember((analysis.spec.to_json(), key[1]), entry)
+            if wanted is not None:
+                store = self._storer(data, spec, wanted, digest, entry)
         analysis, payload = entry[0], entry[1]
         target = self._target
         if entry[2] is not target or entry[3] is None:
             entry[2], entry[3] = target, run_transport(analysis, target)
         moved = entry[3]
-        return analysis, payload, moved, target, snapshot_html(payload, moved[1])
+        try:
+            check()
+        except Superseded:  # not shown, but kept for when the user comes back to this choice
+            if store is not None:
+                store()
+            raise
+        return analysis, payload, moved, target, store
+
+    def _storer(self, data: pd.DataFrame, spec: Spec, wanted: str, digest: bytes | None, entry: list):
+        """A callable keeping ``entry`` under (``wanted``, the digest of ``data``), and under the
+        resolved Spec too when it differs from ``spec``."""
+
+        def store() -> None:
+            key = (wanted, digest if digest is not None else _fingerprint(data, spec))
+            self._remember(key, entry)
+            if entry[0].spec != spec:
+                self._remember((entry[0].spec.to_json(), key[1]), entry)
+
+        return store
 
     # -- results of revisited choices ----------------------------------------------------------------
+    def _kept(self, spec_json: str | None) -> bool:
+        """Whether a result for this Spec (on any version of the table) is kept."""
+        if spec_json is None:
+            return False
+        with self._cache_lock:
+            return any(key[0] == spec_json for key in self._cache)
+
     def _recall(self, key) -> list | None:
         """The cached [analysis, payload, target, transport] for ``key``, or None."""
         if key is None or key[1] is None:
@@ -486,17 +533,19 @@ class Explorer(SnapshotDisplay, anywidget.AnyWidget):
                 self._set_status("error", _friendly(outcome.error), 0.0)
                 self._refresh_display()
                 return
-            analysis, payload, moved, target, html = outcome.value
+            analysis, payload, moved, target, store = outcome.value
             if target is not self._target:  # set_target() was called while this was computed
                 moved = run_transport(analysis, self._target)
-                html = snapshot_html(payload, moved[1])
             self._analysis = analysis
-            self._snapshot = html
             with self.hold_sync():
                 self._result = payload
                 self._transported, self._transport = moved
                 self._status = {"state": "idle", "message": "", "progress": 1.0}
+            # after the result message: the static snapshot, then keeping the result for reuse
+            self._snapshot = snapshot_html(payload, moved[1])
             self._refresh_display()
+            if store is not None:
+                store()
 
     def _publish_transport(self, moved: tuple) -> None:
         """Show a new target's transported effect for the Analysis on screen (no re-analysis)."""
