@@ -43,6 +43,23 @@ def assert_same_effects(a, b, tol):
     assert list(a.overall.index) == list(b.overall.index)
 
 
+def assert_same_checks(a, b):
+    """Every in-memory check (arm sizes, propensity ranges, common support, weights, balance), in the
+    same order and with the same warnings, then the two rows saying where the data lives; returns the
+    engine's Checks without those two rows."""
+    checks = b.diagnostics
+    engine_rows = checks["check"].str.contains("DuckDB")
+    assert list(checks["check"][engine_rows]) == ["rows scanned in DuckDB (the data stays there)",
+                                                  "full scans in DuckDB"]
+    same = checks[~engine_rows].reset_index(drop=True)
+    mem = a.diagnostics.reset_index(drop=True)
+    assert list(zip(same["stratum"], same["check"], same["arm"])) == list(zip(mem["stratum"], mem["check"], mem["arm"]))
+    np.testing.assert_allclose(same["value"].to_numpy(float), mem["value"].to_numpy(float), rtol=1e-6, atol=1e-8)
+    assert list(same["warning"]) == list(mem["warning"])
+    assert [n for n in b.notes if n.startswith("Checks: ")] == [n for n in a.notes if n.startswith("Checks: ")]
+    return same
+
+
 CONF = ("age", "deprivation", "clinic_visits", "years_diagnosed", "district")
 
 
@@ -68,6 +85,8 @@ def test_counts_methods_equal_pandas(demo, rel, method, measure):
                  confounders=CONF, method=method, measure=measure)
     assert_same_effects(a, b, 1e-8)
     assert a.notes == b.notes[: len(a.notes)]  # binning notes included, then where the data was
+    balance = assert_same_checks(a, b)
+    assert balance["check"].str.startswith("smd before").sum() > 0
     assert "DuckDB" in b.notes[-1]
     pd.testing.assert_frame_equal(a.response_types, b.response_types)
 
@@ -86,18 +105,8 @@ def test_model_methods_equal_pandas(demo, rel, method):
     assert {"n", "propensity min", "propensity max", "rows scanned in DuckDB (the data stays there)",
             "full scans in DuckDB"} <= set(checks["check"])
     assert (checks.loc[checks["check"] == "full scans in DuckDB", "value"] == b.extra["engine"]["scans"]).all()
-    # every in-memory check (arm sizes, propensity ranges, common support, weights, balance), in the
-    # same order, with the same warnings; then the two rows saying where the data lives
-    engine_rows = checks["check"].str.contains("DuckDB")
-    assert list(checks["check"][engine_rows]) == ["rows scanned in DuckDB (the data stays there)",
-                                                  "full scans in DuckDB"]
-    same = checks[~engine_rows].reset_index(drop=True)
-    mem = a.diagnostics.reset_index(drop=True)
-    assert list(zip(same["stratum"], same["check"], same["arm"])) == list(zip(mem["stratum"], mem["check"], mem["arm"]))
-    np.testing.assert_allclose(same["value"].to_numpy(float), mem["value"].to_numpy(float), rtol=1e-6, atol=1e-8)
-    assert list(same["warning"]) == list(mem["warning"])
+    same = assert_same_checks(a, b)
     assert "outside common support" in set(same["check"])
-    assert [n for n in b.notes if n.startswith("Checks: ")] == [n for n in a.notes if n.startswith("Checks: ")]
     smd_b = same[same["check"].str.startswith("smd")]
     assert len(smd_b) > 0
     assert any(check.startswith("smd after") for check in smd_b["check"]) == (method != "standardization")

@@ -110,7 +110,9 @@ def analyze_engine(data: Any, spec: Spec, progress: Callable[[float], None] | No
             "pass interval='wald', or analyse the table in pandas."
         )
     mh = resolved.method == "mantel-haenszel"
-    table, mh_notes = passes.cell_table(src, resolved, ins, confounders=mh)
+    des = passes.design(src, resolved, ins) if not model and resolved.confounders else None
+    table, mh_notes, cell_sums = passes.cell_table(src, resolved, ins, confounders=mh, des=des)
+    n_cells = len(table)
     if not ins.binary:
         table = passes.moment_rows(table, resolved.outcome, ins.centre)
     bins = {name: edges for name, _, edges, _ in ins.keys if edges is not None}
@@ -129,6 +131,8 @@ def analyze_engine(data: Any, spec: Spec, progress: Callable[[float], None] | No
         from ..analysis import analyze
 
         result = analyze(table, cspec, progress=progress)
+        if des is not None:  # balance before adjustment, as the in-memory Checks of crude and MH
+            result.extra["engine_balance"] = _cell_balance(table, cspec, des, cell_sums, n_cells)
     notes = list(result.notes)[len(bins):]  # the table of counts' own binning notes, replaced below
     notes = list(ins.notes) + key_notes + mh_notes + [n for n in notes if not n.startswith("Checks: ")]
     diagnostics = _engine_diagnostics(result, src, ins)
@@ -186,6 +190,27 @@ def _model_analysis(src, spec: Spec, cspec: Spec, ins, table: pd.DataFrame) -> A
         if step is not None:
             fields.update(step(prep, spec, gm, fields))
     return Analysis(**fields)
+
+
+def _cell_balance(table: pd.DataFrame, cspec: Spec, des, cell_sums: pd.DataFrame, n_cells: int) -> list:
+    """Standardized mean differences per stratum from the design sums of the table of counts' cells
+    (the first ``n_cells`` rows of ``table``; a numeric outcome's table repeats them once more)."""
+    prep, _ = fr.prepare(table, cspec.replace(method="crude", interval="wald"))
+    k, p = prep.n_strata, len(des.exprs)
+    stratum, a = prep.stratum[:n_cells], prep.a[:n_cells]
+    n = table[passes.COUNT].to_numpy(float)[:n_cells] * (1.0 if n_cells == len(table) else 2.0)
+
+    def per_stratum(v):
+        return np.bincount(stratum, weights=v, minlength=k)
+
+    d = cell_sums[[f"d{j}" for j in range(p)]].to_numpy(float)
+    q = cell_sums[[f"q{j}" for j in range(p)]].to_numpy(float)
+    sums = {"sw": per_stratum(n), "swa": per_stratum(n * a),
+            "d": np.column_stack([per_stratum(d[:, j]) for j in range(p)]) if p else np.zeros((k, 0)),
+            "da": np.column_stack([per_stratum(a * d[:, j]) for j in range(p)]) if p else np.zeros((k, 0)),
+            "qq": np.column_stack([per_stratum(q[:, j]) for j in range(p)]) if p else np.zeros((k, 0)),
+            "qa": np.column_stack([per_stratum(a * q[:, j]) for j in range(p)]) if p else np.zeros((k, 0))}
+    return passes.balance(des, sums)
 
 
 def _engine_diagnostics(result: Analysis, src, ins) -> pd.DataFrame:

@@ -312,12 +312,16 @@ def _mh_keys(src, spec: Spec, ins: Inspection):
     return out, notes
 
 
-def cell_table(src, spec: Spec, ins: Inspection, *, confounders: bool) -> tuple[pd.DataFrame, list]:
+def cell_table(src, spec: Spec, ins: Inspection, *, confounders: bool, des: _Design | None = None
+               ) -> tuple[pd.DataFrame, list, pd.DataFrame | None]:
     """The table of counts: one row per observed cell, with the frequency in column :data:`COUNT`.
 
     Columns: the modifiers (bins as their left edge), the exposure, the outcome (0/1 outcome) or
     ``__s1``/``__s2`` (sums of the centred outcome and its square), the confounders' levels when
-    ``confounders`` (Mantel-Haenszel), and :data:`COUNT`. Returns ``(table, notes)``.
+    ``confounders`` (Mantel-Haenszel), and :data:`COUNT`. With a confounder design ``des``, the same
+    scan also sums every design column ``u_j = x_j - shift_j`` and its square per cell (for the
+    balance checks): returned as a third table, row for row with the first, columns ``d{j}``, ``q{j}``.
+    Returns ``(table, notes, sums or None)``.
     """
     inner = [(f"k{i}", expr) for i, (_, expr, _, _) in enumerate(ins.keys)]
     inner.append(("e", _col(src, spec.exposure)))
@@ -332,6 +336,10 @@ def cell_table(src, spec: Spec, ins: Inspection, *, confounders: bool) -> tuple[
         inner.append(("y", fmt("({} - {})", y, value(ins.centre))))
     inner.append(("w", _as_double(src, spec.counts) if spec.counts else raw("1.0")))
     aggs = "SUM(w) AS n" + ("" if ins.binary else ", SUM(w * y) AS s1, SUM(w * y * y) AS s2")
+    p = len(des.exprs) if des is not None else 0
+    for j in range(p):
+        inner.append((f"u{j}", fmt("({} - {})", des.exprs[j], value(float(des.shifts[j])))))
+        aggs += f", SUM(w * u{j}) AS d{j}, SUM(w * u{j} * u{j}) AS q{j}"
     g = ", ".join(groups)
     # ORDER BY: the engine returns groups in any order (threads); a fixed order keeps seeded
     # bootstrap draws over the cells reproducible.
@@ -351,7 +359,8 @@ def cell_table(src, spec: Spec, ins: Inspection, *, confounders: bool) -> tuple[
         out["__s1"] = got["s1"].to_numpy(float)
         out["__s2"] = got["s2"].to_numpy(float)
     out[COUNT] = got["n"].to_numpy(float)
-    return out, notes
+    sums = got[[f"{c}{j}" for j in range(p) for c in ("d", "q")]].astype(float) if des is not None else None
+    return out, notes, sums
 
 
 def confounder_alias(i: int) -> str:
@@ -385,10 +394,10 @@ class _Design:
     names: list
     notes: list
     shifts: list  # a value inside each column's range (mid-range; 0 for indicators), for stable sums
-    terms: list = field(default_factory=list)  # balance terms: (label, kind, design columns), see _balance
+    terms: list = field(default_factory=list)  # balance terms: (label, kind, design columns), see balance
 
 
-def _design(src, spec: Spec, ins: Inspection) -> _Design:
+def design(src, spec: Spec, ins: Inspection) -> _Design:
     """Design columns of the confounders, coded as :func:`stratagem.estimate.design.confounder_design`."""
     exprs, names, notes, shifts, terms = [], [], [], [], []
     for col in spec.confounders:
@@ -540,7 +549,7 @@ def model_means(src, spec: Spec, ins: Inspection, prep, keys_to_stratum: dict, *
     a_expr = _exposure_expr(src, spec, prep)
     y_expr = _as_double(src, spec.outcome)
     w_expr = _as_double(src, spec.counts) if spec.counts else raw("1.0")
-    des = _design(src, spec, ins)
+    des = design(src, spec, ins)
     p = len(des.exprs)
     base = [(f"k{i}", e) for i, e in enumerate(key_exprs)] if n_keys else [("s", raw("0"))]
     base += [("a", a_expr), ("y", y_expr), ("w", w_expr)]
@@ -665,7 +674,7 @@ def model_means(src, spec: Spec, ins: Inspection, prep, keys_to_stratum: dict, *
     gm = GroupMeans(n, nn1, nn0, m1, m0, v11, v00, v10, status, notes=notes)
     gm.extra["confounder_columns"] = tuple(names)
     gm.extra["engine_checks"] = diag["checks"]
-    gm.extra["engine_balance"] = _balance(des, m, diag["checks"], shift)
+    gm.extra["engine_balance"] = balance(des, moment_sums(m, p), diag["checks"])
     if spec.interval == "bootstrap":
         S, layers = diag["rows"]
         gm.extra["engine_replicates"] = poisson_replicates(
@@ -710,11 +719,27 @@ def _smd(sums: dict, kind: str, shift: float, n_rows: np.ndarray) -> np.ndarray:
     return np.where(np.isfinite(d), d, np.nan)
 
 
-def _balance(des: _Design, m: pd.DataFrame, checks: pd.DataFrame, shift: np.ndarray) -> list:
+def moment_sums(m: pd.DataFrame, p: int) -> dict:
+    """The unweighted balance sums per stratum from the moments scan (see :func:`balance`)."""
+    iu = np.triu_indices(p)
+    diag = [int(np.flatnonzero((iu[0] == j) & (iu[1] == j))[0]) for j in range(p)]
+    cols = lambda names: m[names].to_numpy(float).reshape(len(m), -1)  # noqa: E731
+    return {"sw": m["sw"].to_numpy(float), "swa": m["swa"].to_numpy(float),
+            "d": cols([f"d{j}" for j in range(p)]), "da": cols([f"da{j}" for j in range(p)]),
+            "qq": cols([f"c{i}" for i in diag]), "qa": cols([f"qa{j}" for j in range(p)])}
+
+
+def balance(des: _Design, sums: dict, checks: pd.DataFrame | None = None) -> list:
     """Balance of every confounder term per stratum and overall: ``(label, before, after or None)``,
-    arrays over the K strata and the overall group, from the moments scan (unweighted) and the means
-    scan (with the inverse probability weights), in the terms and order of the in-memory Checks."""
+    arrays over the K strata and the overall group, in the terms and order of the in-memory Checks.
+
+    ``sums`` holds, per stratum, the frequency ``sw`` and the exposed frequency ``swa`` (K,), and for
+    every design column ``j`` the sums of ``w u_j`` (``d``), ``w a u_j`` (``da``), ``w u_j^2``
+    (``qq``) and ``w a u_j^2`` (``qa``), (K, p), with ``u_j = x_j - shift_j``. ``checks`` (the means
+    scan of IPW and AIPW) adds the same sums weighted by the inverse probability weights.
+    """
     p = len(des.exprs)
+    shift = np.asarray(des.shifts, dtype=float)
     if not des.terms:
         return []
 
@@ -722,17 +747,15 @@ def _balance(des: _Design, m: pd.DataFrame, checks: pd.DataFrame, shift: np.ndar
         x = np.asarray(x, dtype=float)
         return np.append(x, x.sum())
 
-    N, Na = m["sw"].to_numpy(float), m["swa"].to_numpy(float)
+    N, Na = sums["sw"], sums["swa"]
     n_rows = {1: grp(Na), 0: grp(N - Na)}
+    weighted = checks is not None and "sws1" in checks
     raw_sums = {}
     for j in range(p):
-        d, da = m[f"d{j}"].to_numpy(float), m[f"da{j}"].to_numpy(float)
-        iu = np.triu_indices(p)
-        qq = m[f"c{int(np.flatnonzero((iu[0] == j) & (iu[1] == j))[0])}"].to_numpy(float)
-        qa = m[f"qa{j}"].to_numpy(float)
+        d, da, qq, qa = (sums[key][:, j] for key in ("d", "da", "qq", "qa"))
         before = {1: (grp(Na), grp(da), grp(qa)), 0: (grp(N - Na), grp(d - da), grp(qq - qa))}
         after = None
-        if f"bal1_{j}" in checks:
+        if weighted:
             after = {1: (grp(checks["sws1"]), grp(checks[f"bal1_{j}"]), grp(checks[f"bal1q_{j}"])),
                      0: (grp(checks["sws0"]), grp(checks[f"bal0_{j}"]), grp(checks[f"bal0q_{j}"]))}
         raw_sums[j] = (before, after)
@@ -740,7 +763,7 @@ def _balance(des: _Design, m: pd.DataFrame, checks: pd.DataFrame, shift: np.ndar
     for label, kind, cols in des.terms:
         if kind == "constant":
             nan = np.full(len(N) + 1, np.nan)
-            out.append((label, nan, nan if "sws1" in checks else None))
+            out.append((label, nan, nan if weighted else None))
             continue
         if kind == "reference":  # indicator of the first level: 1 - the other indicators
             results = []
@@ -749,12 +772,12 @@ def _balance(des: _Design, m: pd.DataFrame, checks: pd.DataFrame, shift: np.ndar
                 if parts[0] is None:
                     results.append(None)
                     continue
-                sums = {}
+                ref = {}
                 for arm in (0, 1):
                     s0 = parts[0][arm][0]
                     s1 = s0 - sum(part[arm][1] for part in parts)
-                    sums[arm] = (s0, s1, s1)
-                results.append(_smd(sums, "binary", 0.0, n_rows))
+                    ref[arm] = (s0, s1, s1)
+                results.append(_smd(ref, "binary", 0.0, n_rows))
             out.append((label, results[0], results[1]))
             continue
         j = cols[0]
