@@ -19,6 +19,7 @@ from __future__ import annotations
 import math
 
 import numpy as np
+import pandas as pd
 
 from .. import measures
 from .effect_curve import effect_curve
@@ -89,6 +90,17 @@ def _evalue_note(spec) -> str:
             "the interval limit closer to the null.")
 
 
+def _appended(series: pd.Series, values: dict) -> pd.Series:
+    """A new Series: ``series`` followed by ``values``, as setting them one by one would give."""
+    if series.dtype != object or series.index.has_duplicates or any(k in series.index for k in values):
+        out = series.copy()
+        for k, v in values.items():
+            out[k] = v
+        return out
+    return pd.Series([*series.tolist(), *values.values()], index=[*series.index, *values],
+                     dtype=object, name=series.name)
+
+
 def toolkit_fields(prep, spec, gm, fields) -> dict:
     """Post-estimation step of :func:`stratagem.analyze`: the toolkit's tables and columns.
 
@@ -117,8 +129,8 @@ def toolkit_fields(prep, spec, gm, fields) -> dict:
     (2x2 cells for Breslow-Day and the cell-level interaction LR test) and, for adjusted methods on
     tables of at most ``heterogeneity.LR_MAX_ROWS`` rows, two statsmodels fits of the working model.
     """
-    strata = fields["strata"].copy()
-    overall = fields["overall"].copy()
+    strata = fields["strata"]
+    overall = fields["overall"]
     notes = list(fields.get("notes", ()))
     extra = fields.get("extra") or {}
     ratio = spec.measure in measures.RATIO
@@ -129,8 +141,7 @@ def toolkit_fields(prep, spec, gm, fields) -> dict:
     # multiplicity over estimable strata
     status_ok = strata["status"].to_numpy() == "ok"
     p = np.where(status_ok, strata["p_value"].to_numpy(dtype=float), np.nan)
-    strata["p_holm"] = adjusted_p(p, "holm")
-    strata["p_bh"] = adjusted_p(p, "fdr_bh")
+    added = {"p_holm": adjusted_p(p, "holm"), "p_bh": adjusted_p(p, "fdr_bh")}
     est = strata["estimate"].to_numpy(dtype=float)
     se = np.where(status_ok, strata["se"].to_numpy(dtype=float), np.nan)
     with np.errstate(divide="ignore", invalid="ignore"):
@@ -147,19 +158,21 @@ def toolkit_fields(prep, spec, gm, fields) -> dict:
         if m > 1:
             notes.append(f"Simultaneous intervals: Bonferroni over {m} strata. Adjusted p-values: "
                          "p_holm (Holm), p_bh (Benjamini-Hochberg false discovery rate).")
-    strata["ci_low_simultaneous"] = lo
-    strata["ci_high_simultaneous"] = hi
+    added["ci_low_simultaneous"] = lo
+    added["ci_high_simultaneous"] = hi
 
     # E-values per stratum and overall
     ev = [_evalues(spec, e, l_, h, b) for e, l_, h, b in zip(
         est, strata["ci_low"].to_numpy(dtype=float), strata["ci_high"].to_numpy(dtype=float),
         strata["mean_unexposed"].to_numpy(dtype=float))]
-    strata["e_value"] = [v[0] for v in ev]
-    strata["e_value_ci"] = [v[1] for v in ev]
+    added["e_value"] = [v[0] for v in ev]
+    added["e_value_ci"] = [v[1] for v in ev]
     e0, e1, _ = _evalues(spec, float(overall["estimate"]), float(overall["ci_low"]),
                          float(overall["ci_high"]), float(overall["mean_unexposed"]))
-    overall["e_value"] = e0
-    overall["e_value_ci"] = e1
+    # New tables built in one call each (adding columns or entries one at a time costs more than
+    # the arithmetic here); the inputs are not changed.
+    strata = pd.DataFrame({**{c: strata[c] for c in strata.columns}, **added}, index=strata.index)
+    overall = _appended(overall, {"e_value": e0, "e_value_ci": e1})
     note = _evalue_note(spec)
     if note:
         notes.append(note)
