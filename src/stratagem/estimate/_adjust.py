@@ -96,6 +96,7 @@ class Unit:
     sw: np.ndarray | None = None  # stabilised, possibly truncated weights
     free: np.ndarray | None = None  # rows whose weight was not truncated
     pairs: object = None  # column products of Z for batched fits (glm._pairs), if precomputed
+    Wt: np.ndarray | None = None  # W transposed (n_u, B), C-contiguous, for batched fits
     notes: list = field(default_factory=list)
 
     @property
@@ -254,15 +255,29 @@ def _fit(u: Unit, need_ps: bool, need_om: bool, start_ps=None, start_om=None, ps
     ok = np.ones(B, dtype=bool)
     n1 = _wdot(u.W, u.a)
     ok &= (n1 > 0) & (u.W.sum(axis=1) - n1 > 0)
+    W = u.W if u.Wt is None else u.Wt.T  # a transposed view: the batched fits need no copy of it
     if need_ps:
-        u.ps = glm.fit(u.Z, u.a, u.W, family="binomial", mask=u.ps_mask, beta0=start_ps, tol=tol,
+        u.ps = glm.fit(u.Z, u.a, W, family="binomial", mask=u.ps_mask, beta0=start_ps, tol=tol,
                        pairs=u.pairs)
-        u.E = glm.logistic(glm.linear_predictor(u.Z, u.ps.beta))
+        u.E = glm.expit_inplace(glm.linear_predictor(u.Z, u.ps.beta))
         if ps_required:
             ok &= u.ps.converged
     if need_om:
         family = "binomial" if u.binary else "gaussian"
-        u.om = glm.fit(u.Z, u.y, u.W, family=family, mask=u.mask, beta0=start_om, tol=tol, pairs=u.pairs)
+        u.om = glm.fit(u.Z, u.y, W, family=family, mask=u.mask, beta0=start_om, tol=tol, pairs=u.pairs)
+        if B > 1:  # replicates: the predictions only (fitted values at the observed exposure serve
+            # only the influence functions of the full sample)
+            b0 = u.om.beta.copy()
+            b0[:, -1] = 0.0
+            eta0 = glm.linear_predictor(u.Z, b0)  # exposure set to 0
+            eta1 = eta0 + u.om.beta[:, -1:]  # ... and to 1
+            if u.binary:
+                u.Q1, u.Q0 = glm.expit_inplace(eta1), glm.expit_inplace(eta0)
+            else:
+                u.Q1, u.Q0 = eta1, eta0
+            ok &= u.om.converged
+            u.ok = ok
+            return
         eta = glm.linear_predictor(u.Z, u.om.beta)
         ba = u.om.beta[:, -1:]
         eta1 = eta + ba * (1.0 - u.a)
@@ -355,7 +370,10 @@ def run(prep: Prepared, spec: Spec, W: np.ndarray | None, *, need_ps: bool, need
         ps_required: bool, start: Run | None = None) -> Run:
     """Fit every stratum for weight rows ``W`` (original row order)."""
     lay = start.lay if start is not None else _cached_layout(prep)
-    Ws = lay.w[None, :] if W is None else W[:, lay.order]
+    # np.take gathers the columns of W several times faster than W[:, order]; the fits take the
+    # replicate weights rows by models, transposed here once for all strata and both models
+    Ws = lay.w[None, :] if W is None else np.take(W, lay.order, axis=1)
+    Wst = np.ascontiguousarray(Ws.T) if Ws.shape[0] > 1 else None
     levels = _level_codes(prep.confounders, lay.order) if start is None and need_ps and ps_required else None
 
     def one(s: int) -> Unit:
@@ -369,6 +387,7 @@ def run(prep: Prepared, spec: Spec, W: np.ndarray | None, *, need_ps: bool, need
         if u.status == OK:
             if Ws.shape[0] > 1:
                 u.pairs = lay.stratum_pairs(s)
+                u.Wt = Wst[lo:hi]
             ref = start.strata[s] if start is not None else None
             _fit(u, need_ps, need_om, _beta(ref, "ps"), _beta(ref, "om"), ps_required)
             if start is None:

@@ -49,7 +49,8 @@ import numpy as np
 from scipy.special import xlogy
 
 __all__ = [
-    "GLMFit", "fit", "linear_predictor", "information", "projection", "logistic", "weighted_gram",
+    "GLMFit", "fit", "linear_predictor", "expit_inplace", "information", "projection", "logistic",
+    "weighted_gram",
     "dot_rows", "dot_cols",
 ]
 
@@ -360,9 +361,38 @@ class GLMFit:
 
 
 def linear_predictor(X: np.ndarray, beta: np.ndarray) -> np.ndarray:
-    """``X @ beta`` for one (p,) or many (B, p) coefficient vectors: shape (n,) or (B, n)."""
+    """``X @ beta`` for one (p,) or many (B, p) coefficient vectors: shape (n,) or (B, n).
+
+    Many vectors: ``beta @ X'`` in pieces of columns, each one small (single-threaded) BLAS call
+    writing straight into its columns of the (B, n) result (no rows-by-models array to transpose;
+    several times faster than that transpose on a busy machine). Each entry is a sum over the p
+    coefficients only, so the pieces do not change it.
+    """
     X = np.ascontiguousarray(X)
-    return np.ascontiguousarray(dot_rows(X, beta.T).T) if beta.ndim == 2 else dot_rows(X, beta)
+    if beta.ndim == 1:
+        return dot_rows(X, beta)
+    n, p = X.shape
+    B = beta.shape[0]
+    beta = np.ascontiguousarray(beta, dtype=float)
+    out = np.empty((B, n))
+    rows = _block_rows(B, p)
+    nb = n // rows
+    m = nb * rows
+    if nb:
+        pieces = X[:m].reshape(nb, rows, p).transpose(0, 2, 1)  # (nb, p, rows) views
+        np.matmul(beta, pieces, out=out[:, :m].reshape(B, nb, rows).transpose(1, 0, 2))
+    if m < n:
+        out[:, m:] = beta @ X[m:].T
+    return out
+
+
+def expit_inplace(eta: np.ndarray) -> np.ndarray:
+    """``expit(eta)`` written over ``eta`` (returned): :func:`logistic` without its temporaries."""
+    np.maximum(eta, -EXP_LIMIT, out=eta)
+    np.negative(eta, out=eta)
+    np.exp(eta, out=eta)
+    eta += 1.0
+    return np.reciprocal(eta, out=eta)
 
 
 def _pairs(X: np.ndarray):
