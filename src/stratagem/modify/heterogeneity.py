@@ -185,6 +185,15 @@ def _gaussian_lr_cells(prep, ok_strata):
     return float(n.sum() * np.log((within + rss_cells) / within))
 
 
+def _adjusted(spec) -> bool:
+    """Whether the interaction LR test's working model holds the confounders."""
+    return spec.method not in ("crude", "exact") and len(spec.confounders) > 0
+
+
+def _breslow_day_applies(prep, spec) -> bool:
+    return prep.binary and spec.measure == "or" and spec.method in ("mantel-haenszel", "crude")
+
+
 def interaction_lr(prep, spec, ok_strata, cells=None):
     """Likelihood-ratio test of exposure-by-stratum terms; returns ``(statistic, df, p, note)``.
 
@@ -193,7 +202,7 @@ def interaction_lr(prep, spec, ok_strata, cells=None):
     ok_strata = np.asarray(ok_strata)
     k = len(ok_strata)
     df = k - 1
-    adjusted = spec.method not in ("crude", "exact") and len(spec.confounders) > 0
+    adjusted = _adjusted(spec)
     scale = "odds-ratio scale (logistic model)" if prep.binary else "difference scale (linear model)"
     try:
         if not adjusted:
@@ -204,13 +213,15 @@ def interaction_lr(prep, spec, ok_strata, cells=None):
                 stat = _gaussian_lr_cells(prep, ok_strata)
             how = "no confounders, fitted on the stratum x exposure cells"
         else:
-            rows = np.isin(prep.stratum, ok_strata) & (prep.w > 0)
-            n_rows = int(rows.sum())
+            # rows with weight per stratum (a bincount is cheaper than a row mask when over the limit)
+            per = np.bincount(prep.stratum, weights=prep.w > 0, minlength=prep.n_strata)
+            n_rows = int(per[ok_strata].sum())
             if n_rows > LR_MAX_ROWS:
                 return (np.nan, df, np.nan,
                         f"not computed: {n_rows:,} rows is above {LR_MAX_ROWS:,}, where refitting the "
                         "working model with confounders on every analysis would be slow; see "
                         "interaction_wald")
+            rows = np.isin(prep.stratum, ok_strata) & (prep.w > 0)
             remap = np.full(prep.n_strata, -1)
             remap[ok_strata] = np.arange(k)
             st = remap[prep.stratum[rows]]
@@ -238,7 +249,7 @@ def breslow_day(prep, spec, ok_strata, cells=None):
     """Breslow-Day test with Tarone's correction; returns ``(statistic, df, p, note)`` (statsmodels)."""
     k = len(ok_strata)
     df = k - 1
-    if not prep.binary or spec.measure != "or" or spec.method not in ("mantel-haenszel", "crude"):
+    if not _breslow_day_applies(prep, spec):
         return np.nan, np.nan, np.nan, "for measure='or' with method='mantel-haenszel' or 'crude' only"
     if k < 2:
         return np.nan, np.nan, np.nan, "fewer than two estimable strata"
@@ -334,7 +345,9 @@ def heterogeneity_table(prep, spec, gm, strata: pd.DataFrame, theta_boot=None) -
     rows.append(_row("interaction_wald", stat, wdf, wp,
                      f"Wald test that all {k} stratum estimates are equal ({scale} scale; {how})"))
 
-    cells = cell_counts(prep) if prep.binary else None  # one pass over the rows, shared below
+    # one pass over the rows, shared by the two tests below, when either reads the 2x2 cells
+    needs_cells = prep.binary and (not _adjusted(spec) or _breslow_day_applies(prep, spec))
+    cells = cell_counts(prep) if needs_cells else None
     lr, lrdf, lrp, lrnote = interaction_lr(prep, spec, ok_groups, cells)
     rows.append(_row("interaction_lr", lr, lrdf, lrp, lrnote))
 

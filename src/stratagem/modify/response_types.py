@@ -142,11 +142,12 @@ def bounds_frame(names, risk_exposed, risk_unexposed, ok, monotone: bool) -> tup
             "preventive": np.minimum(p0, 1.0 - p1),
             "immune": np.minimum(1.0 - p1, 1.0 - p0),
         }
-    rows = []
-    for g, name in enumerate(names):
-        for t in TYPES:
-            if good[g]:
-                rows.append((name, t, float(lo[t][g]), float(hi[t][g])))
-            else:
-                rows.append((name, t, math.nan, math.nan))
-    return pd.DataFrame(rows, columns=RESPONSE_TYPE_COLUMNS), notes
+    # one row per (group, type), groups outer: built column-wise in one DataFrame call
+    keep = np.asarray(good, dtype=bool)[:, None]
+    lower = np.where(keep, np.column_stack([np.broadcast_to(lo[t], p1.shape) for t in TYPES]), math.nan)
+    upper = np.where(keep, np.column_stack([np.broadcast_to(hi[t], p1.shape) for t in TYPES]), math.nan)
+    columns = dict(zip(RESPONSE_TYPE_COLUMNS, (
+        [name for name in names for _ in TYPES], [t for _ in names for t in TYPES],
+        lower.ravel(), upper.ravel(),
+    )))
+    return pd.DataFrame(columns), notes

@@ -27,6 +27,11 @@ ROW_FIELDS = STRATA_COLUMNS
 
 def plain(value: Any) -> Any:
     """A JSON-ready copy of ``value``: numpy scalars to Python, NaN/inf to None, tuples to lists."""
+    kind = type(value)  # the common exact types first: this runs once per cell of every table
+    if kind is float:
+        return value if math.isfinite(value) else None
+    if kind is str or kind is int:
+        return value
     if isinstance(value, dict):
         return {str(k): plain(v) for k, v in value.items()}
     if isinstance(value, (list, tuple)):
@@ -57,17 +62,22 @@ def records(frame: pd.DataFrame | None) -> list[dict]:
     if frame is None or len(frame) == 0:
         return []
     cols = [str(c) for c in frame.columns]
-    return [
-        {c: plain(v) for c, v in zip(cols, row)}
-        for row in frame.itertuples(index=False, name=None)
-    ]
+    return [{c: plain(v) for c, v in zip(cols, row)} for row in zip(*_column_lists(frame))]
+
+
+def _column_lists(frame: pd.DataFrame) -> list[list]:
+    """The columns of ``frame`` as Python lists, by position (``Series.tolist`` is much cheaper than
+    iterating rows; :func:`plain` makes the values of either way the same JSON)."""
+    return [frame.iloc[:, j].tolist() for j in range(frame.shape[1])]
 
 
 def _rows(analysis: Analysis) -> list[dict]:
     """Strata rows then the overall row, each with ``levels`` (modifier -> level label)."""
     frame = analysis.to_frame()
+    names = list(frame.columns)
     out = []
-    for row in frame.to_dict(orient="records"):
+    for values in zip(*_column_lists(frame)):
+        row = dict(zip(names, values))
         entry = {k: plain(row.get(k)) for k in ROW_FIELDS}
         # Columns the toolkit adds (adjusted p-values, simultaneous intervals, E-values, ...).
         entry["extra"] = {
