@@ -81,6 +81,69 @@ def test_column_without_weight_in_a_replicate_is_held_at_zero():
     np.testing.assert_allclose(got.beta[1, :-1], ref.params, rtol=1e-6)
 
 
+def test_replicates_from_a_shared_warm_start_equal_their_own_fits():
+    # Bootstrap-style fits: every replicate starts from the full-sample coefficients (a chord step
+    # with one shared information matrix, then Newton steps) and must end at its own full refit.
+    X, y, w = _data(8, n=500)
+    X[:, 1:] = (X[:, 1:] - X[:, 1:].mean(axis=0)) / X[:, 1:].std(axis=0)  # as the estimators' designs
+    full = glm.fit(X, y, w)
+    rng = np.random.default_rng(2)
+    W = rng.multinomial(500, np.full(500, 1 / 500), size=20).astype(float) * w
+    got = glm.fit(X, y, W, beta0=full.beta, tol=1e-5)  # the bootstrap's tolerance
+    assert got.converged.all()
+    for b in range(W.shape[0]):
+        own = glm.fit(X, y, W[b], tol=1e-12)
+        np.testing.assert_allclose(got.beta[b], own.beta, rtol=0, atol=1e-8)
+    ref = sm.GLM(y, X, family=sm.families.Binomial(), freq_weights=W[0]).fit(tol=1e-13)
+    np.testing.assert_allclose(got.beta[0], ref.params, rtol=1e-7, atol=1e-9)
+    # the chord step moves the replicates most of the way: closer to their solutions than the start
+    Wt = np.ascontiguousarray(W.T)
+    start = glm._chord_start(np.ascontiguousarray(X), y, Wt, np.ones((W.shape[0], 5), dtype=bool),
+                             full.beta, glm._col_absmax(X))
+    before = np.abs(got.beta - full.beta).max(axis=1)
+    after = np.abs(got.beta - start).max(axis=1)
+    assert np.all(after < 0.6 * before)  # on this small, rare-outcome sample; far closer on large strata
+
+
+def test_chord_start_holds_a_column_without_weight_at_its_start():
+    X, y, _ = _data(5, n=200)
+    X = np.column_stack([X, np.r_[np.ones(10), np.zeros(190)]])  # a rare indicator
+    full = glm.fit(X, y)
+    W = np.ones((3, 200))
+    W[1, :10] = 0.0  # replicate 1 never draws the rows where the indicator is 1
+    W[2, 50:60] = 3.0
+    got = glm.fit(X, y, W, beta0=full.beta, tol=1e-5)
+    assert got.converged.all()
+    assert got.beta[1, -1] == full.beta[-1]  # no information on it: left where it started
+    ref = sm.GLM(y[10:], X[10:, :-1], family=sm.families.Binomial()).fit(tol=1e-13)
+    np.testing.assert_allclose(got.beta[1, :-1], ref.params, rtol=1e-7, atol=1e-9)
+    np.testing.assert_allclose(got.beta[2], glm.fit(X, y, W[2], tol=1e-12).beta, rtol=0, atol=1e-8)
+
+
+def test_chord_start_falls_back_to_newton_on_far_replicates():
+    # Weight piled on a few rows puts a replicate's solution far from the shared start; the chord
+    # step is refused there (or harmless) and Newton steps with step-halving still find the fit.
+    X, a, w = _heavy_counts()
+    full = glm.fit(X, a, np.ones_like(w))
+    W = np.vstack([np.ones_like(w), w, 2.0 * w])
+    got = glm.fit(X, a, W, beta0=full.beta, tol=1e-5)
+    assert got.converged.all()
+    for b in range(3):
+        np.testing.assert_allclose(got.beta[b], glm.fit(X, a, W[b]).beta, rtol=0, atol=1e-8)
+
+
+@pytest.mark.parametrize("n, B", [(1, 2), (7, 1), (1000, 3), (20_011, 40), (513, 70)])
+def test_linear_predictor_and_expit_in_place(n, B):
+    rng = np.random.default_rng(n + B)
+    X = rng.normal(size=(n, 12))
+    beta = rng.normal(size=(B, 12))
+    got = glm.linear_predictor(X, beta)
+    assert got.shape == (B, n) and got.flags.c_contiguous
+    np.testing.assert_allclose(got, beta @ X.T, rtol=1e-13, atol=1e-12)
+    eta = got * 40.0  # into the clipped tails as well
+    assert np.array_equal(glm.expit_inplace(eta.copy()), glm.logistic(eta))
+
+
 def test_complete_separation_is_reported():
     rng = np.random.default_rng(0)
     x = rng.normal(size=200)

@@ -134,12 +134,13 @@ def layout(prep: Prepared) -> Layout:
     del design
     _standardise(x, prep.w)  # in place, on contiguous columns (this matrix is ours)
     Z = np.empty((n, p + 2))
-    Z[:, 0] = 1.0
-    for lo in range(0, n, GATHER_ROWS):  # rows sorted by stratum, a block at a time
-        Z[lo : lo + GATHER_ROWS, 1 : p + 1] = x[order[lo : lo + GATHER_ROWS]]
-    del x
     a = prep.a[order]
-    Z[:, -1] = a
+    for lo in range(0, n, GATHER_ROWS):  # rows sorted by stratum, a block at a time, each block of
+        Zb = Z[lo : lo + GATHER_ROWS]  # Z written whole while in cache (np.take: a faster gather)
+        Zb[:, 0] = 1.0
+        Zb[:, 1 : p + 1] = np.take(x, order[lo : lo + GATHER_ROWS], axis=0)
+        Zb[:, -1] = a[lo : lo + GATHER_ROWS]
+    del x
     masks = np.ones((k, p + 2), dtype=bool)
     dropped: dict[str, list[str]] = {}
     for s in range(k):
