@@ -8,6 +8,7 @@ the modification toolkit's tables. Everything shown anywhere in stratagem comes 
 from __future__ import annotations
 
 from collections.abc import Callable
+from dataclasses import replace
 from importlib import import_module
 from typing import Any
 
@@ -97,6 +98,8 @@ def analyze(
 
         data = to_pandas_input(data, columns=[name for _, name in _used_columns(spec)])
     prep, spec = prepare(data, spec)
+    if spec.method in _SORTED_LEVELS:
+        prep = _text_as_categories(prep)
     estimator = get_estimator(spec.method)
     gm = estimator(prep, spec)
     replicates = theta_b = None
@@ -124,6 +127,35 @@ def analyze(
         if step is not None:
             result.update(step(prep, spec, gm, result))
     return Analysis(**result)
+
+
+# Methods whose estimators code a text confounder by its sorted levels (the adjusted models), so
+# reading it through a categorical of sorted categories gives the same numbers to the last digit.
+# Mantel-Haenszel codes levels in order of appearance: a categorical would reorder its sums.
+_SORTED_LEVELS = ("standardization", "ipw", "aipw")
+
+
+def _text_as_categories(prep: Prepared) -> Prepared:
+    """``prep`` with each text confounder column (pandas ``str`` dtype) as a categorical of its
+    sorted values: the same values, read through integer codes.
+
+    The adjusted estimator's design and positivity checks and the Checks table each turn a text
+    column into level codes (sorted levels, as here); on Arrow-backed strings each of those passes
+    costs milliseconds per 10^5 rows, so the one factorisation here replaces three. Numbers are
+    unchanged (compared to the last digit on the demo and benchmark data).
+    """
+    frame = prep.confounders
+    text = [c for c in frame.columns if isinstance(frame[c].dtype, pd.StringDtype)]
+    if not text:
+        return prep
+    columns = {}
+    for c in frame.columns:
+        s = frame[c]
+        if c in text:
+            codes, levels = pd.factorize(s, sort=True)
+            s = pd.Series(pd.Categorical.from_codes(codes, categories=levels), index=s.index, name=c)
+        columns[c] = s
+    return replace(prep, confounders=pd.DataFrame(columns, index=frame.index))
 
 
 def _effects_table(prep: Prepared, spec: Spec, gm: GroupMeans, replicates, theta_b=None) -> pd.DataFrame:
