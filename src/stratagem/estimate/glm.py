@@ -482,8 +482,7 @@ def _chord_start(X, y, Wt, M, b0, colmax):
     n, p = X.shape
     mu0, rest0 = logistic(dot_rows(X, b0), out_rest=True)
     r0 = np.where(y == 1, rest0, -mu0) if np.all((y == 0) | (y == 1)) else y * rest0 - (1.0 - y) * mu0
-    wbar = Wt.sum(axis=1)
-    wbar /= Wt.shape[1]
+    wbar = dot_rows(Wt, np.full(Wt.shape[1], 1.0 / Wt.shape[1]))  # mean weight of each row
     A = np.empty((n, 2 * p))
     np.multiply(X, r0[:, None], out=A[:, :p])
     np.multiply(X, X, out=A[:, p:])
