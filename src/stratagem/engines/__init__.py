@@ -20,7 +20,9 @@ stream, so engine and in-memory bootstrap intervals agree within Monte Carlo err
 Standardization, IPW and AIPW take the Poisson bootstrap in one more scan
 (:func:`.passes.poisson_replicates`): every row gets a Poisson(1) frequency per replicate, a fixed
 function of its values, so replicates repeat exactly on every run; the replicates are the linearised
-(influence-function) ones, first-order equivalent to refitting the models per replicate.
+(influence-function) ones, first-order equivalent to refitting the models per replicate. Crude and
+Mantel-Haenszel with a numeric outcome take the same Poisson weights, summed per cell of the table of
+counts in one scan, so each replicate's cell means are exact (:func:`.passes.poisson_cells`).
 """
 
 from __future__ import annotations
@@ -97,22 +99,20 @@ def analyze_engine(data: Any, spec: Spec, progress: Callable[[float], None] | No
     ins = passes.inspect(src, spec, confounder_levels=method_hint in MODEL_METHODS)
     resolved = fr.resolve(spec, ins.binary)
     model = resolved.method in MODEL_METHODS
-    if resolved.interval == "bootstrap" and not model and not ins.binary:
+    poisson = resolved.interval == "bootstrap" and (model or not ins.binary)  # else multinomial cells
+    if poisson and resolved.counts is not None:
         raise SpecError(
-            "interval='bootstrap' with a numeric outcome is available in an engine for methods "
-            "'standardization', 'ipw' and 'aipw'; for 'crude' and 'mantel-haenszel' pass interval='wald' "
-            "here, or analyse the table in pandas."
-        )
-    if resolved.interval == "bootstrap" and model and resolved.counts is not None:
-        raise SpecError(
-            "interval='bootstrap' for a table of counts (counts=) is not available in an engine for "
-            "model-based methods (each row would need a Poisson draw with its own frequency as mean); "
-            "pass interval='wald', or analyse the table in pandas."
+            "interval='bootstrap' for a table of counts (counts=) is available in an engine only for "
+            "'crude' and 'mantel-haenszel' with a 0/1 outcome (elsewhere each row would need a Poisson "
+            "draw with its own frequency as mean); pass interval='wald', or analyse the table in pandas."
         )
     mh = resolved.method == "mantel-haenszel"
     des = passes.design(src, resolved, ins) if not model and resolved.confounders else None
     table, mh_notes, cell_sums = passes.cell_table(src, resolved, ins, confounders=mh, des=des)
     n_cells = len(table)
+    cell_reps = None
+    if poisson and not model:  # a numeric outcome's crude or Mantel-Haenszel bootstrap
+        cell_reps = passes.poisson_cells(src, resolved, ins, table, confounders=mh)
     if not ins.binary:
         table = passes.moment_rows(table, resolved.outcome, ins.centre)
     bins = {name: edges for name, _, edges, _ in ins.keys if edges is not None}
@@ -127,6 +127,8 @@ def analyze_engine(data: Any, spec: Spec, progress: Callable[[float], None] | No
                              if model else resolved.interval)
     if model:
         result = _model_analysis(src, resolved, cspec, ins, table)
+    elif cell_reps is not None:
+        result = _cells_bootstrap_analysis(src, resolved, cspec, ins, table, cell_reps)
     else:
         from ..analysis import analyze
 
@@ -159,8 +161,6 @@ def analyze_engine(data: Any, spec: Spec, progress: Callable[[float], None] | No
 
 def _model_analysis(src, spec: Spec, cspec: Spec, ins, table: pd.DataFrame) -> Analysis:
     """Standardization, IPW or AIPW: strata from the table of counts, models fitted in the engine."""
-    from ..analysis import _effects_table, _extension, extensions
-
     prep, _ = fr.prepare(table, cspec.replace(method="crude", interval="wald"))
     keys_to_stratum = {}
     key_cols = []
@@ -171,18 +171,69 @@ def _model_analysis(src, spec: Spec, cspec: Spec, ins, table: pd.DataFrame) -> A
         keys_to_stratum.setdefault(tuple(c[i] for c in key_cols), int(prep.stratum[i]))
     gm = passes.model_means(src, spec, ins, prep, keys_to_stratum, name=spec.method)
     replicates = gm.extra.pop("engine_replicates", None)
-    frame = _effects_table(prep, spec, gm, replicates)
-    strata = frame.iloc[:-1].reset_index(drop=True) if spec.strata else frame.iloc[0:0]
-    overall = frame.iloc[-1][OVERALL_FIELDS].rename("overall")
     if replicates is not None:
         gm.notes.append(
             f"Bootstrap in {src.engine}: {spec.n_boot:,} Poisson-weighted replicates (every row a Poisson(1) "
             "frequency), each the one-step update of the estimate through its influence functions rather "
             "than a refit of the models; percentile intervals.")
+    return _finish(prep, spec, ins, gm, replicates, None)
+
+
+def _cells_bootstrap_analysis(src, spec: Spec, cspec: Spec, ins, table: pd.DataFrame, cell_reps) -> Analysis:
+    """Crude or Mantel-Haenszel with a numeric outcome and Poisson-bootstrap intervals.
+
+    The table of counts holds each cell as two rows at ``mean -+ sd`` (:func:`.passes.moment_rows`).
+    A replicate's cell frequency ``n_b`` and outcome sum ``S_b`` (:func:`.passes.poisson_cells`) are
+    given to the two rows as frequencies ``W_lo + W_hi = n_b`` with ``W_lo y_lo + W_hi y_hi = S_b``,
+    so the replicate's cell mean is exact; the estimators' vectorised bootstrap then pools the cells
+    with the point estimate's formulas (a frequency may be negative when a replicate's mean falls
+    outside ``mean -+ sd``: the pooled means are linear in the frequencies, so that is harmless).
+    """
+    from ..estimate import get_estimator
+
+    n_b, s_b = cell_reps
+    c = n_b.shape[1]
+    y = table[spec.outcome].to_numpy(float)
+    y_lo, y_hi = y[:c], y[c:]
+    total = s_b + ins.centre * n_b  # the uncentred outcome sums
+    spread = y_hi - y_lo
+    with np.errstate(divide="ignore", invalid="ignore"):
+        w_hi = np.where(spread > 0, (total - n_b * y_lo) / np.where(spread > 0, spread, 1.0), n_b / 2.0)
+    W = np.concatenate([n_b - w_hi, w_hi], axis=1)
+    bspec = cspec.replace(interval="bootstrap", n_boot=spec.n_boot)
+    prep, bspec = fr.prepare(table, bspec)
+    estimator = get_estimator(bspec.method)
+    gm = estimator(prep, bspec)
+    fast = getattr(estimator, "boot", None)
+    if fast is not None:
+        got = fast(prep, bspec, W)
+        m1_b, m0_b, theta_b = got[0], got[1], (got[2] if len(got) > 2 else None)
+    else:  # crude: per replicate on the small table
+        from dataclasses import replace as with_
+
+        m1_b = np.empty((len(W), prep.n_strata + 1))
+        m0_b = np.empty_like(m1_b)
+        for i, w in enumerate(W):
+            rep = estimator(with_(prep, w=w), bspec)
+            m1_b[i], m0_b[i] = rep.m1, rep.m0
+        theta_b = None
+    gm.notes.append(
+        f"Bootstrap in {src.engine}: {spec.n_boot:,} Poisson-weighted replicates (every row a Poisson(1) "
+        "frequency), each cell's replicate mean summed exactly in the engine; percentile intervals.")
+    return _finish(prep, bspec, ins, gm, (m1_b, m0_b), theta_b)
+
+
+def _finish(prep, spec: Spec, ins, gm, replicates, theta_b) -> Analysis:
+    """The effects table, the Analysis fields and the extension steps, as :func:`stratagem.analyze`."""
+    from ..analysis import _effects_table, _extension, extensions
+
+    frame = _effects_table(prep, spec, gm, replicates, theta_b)
+    strata = frame.iloc[:-1].reset_index(drop=True) if spec.strata else frame.iloc[0:0]
+    overall = frame.iloc[-1][OVERALL_FIELDS].rename("overall")
     fields = dict(
         spec=spec, overall=overall, strata=strata, notes=tuple(prep.notes) + tuple(gm.notes),
         n_input=ins.n_input, n_dropped=ins.n_input - ins.n_kept,
-        extra={"replicates": replicates, "replicate_theta": None, "bin_edges": {},
+        extra={"replicates": replicates, "replicate_theta": theta_b, "bin_edges": dict(prep.bin_edges),
                "covariance": {"v11": gm.v11, "v00": gm.v00, "v10": gm.v10}, **gm.extra},
     )
     for path in extensions:
@@ -249,7 +300,7 @@ def _engine_diagnostics(result: Analysis, src, ins) -> pd.DataFrame:
                     s1, s2 = float(row[f"sws{j}"]), float(row[f"swss{j}"])
                     ess[arm] = s1 * s1 / s2 if s2 > 0 else np.nan
                     extra_rows.append((label, "largest weight", arm, float(row[f"swmax{j}"]), ""))
-                for arm, j in arms:
+                for arm, _ in arms:
                     extra_rows.append((label, "effective sample size", arm, ess[arm],
                                        f"effective sample size under {ESS_SHARE:.0%} of the {arm} arm's rows: "
                                        "a few rows carry most of the weight" if ess[arm] < ESS_SHARE * n_arm[arm]

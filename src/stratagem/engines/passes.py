@@ -312,17 +312,10 @@ def _mh_keys(src, spec: Spec, ins: Inspection):
     return out, notes
 
 
-def cell_table(src, spec: Spec, ins: Inspection, *, confounders: bool, des: _Design | None = None
-               ) -> tuple[pd.DataFrame, list, pd.DataFrame | None]:
-    """The table of counts: one row per observed cell, with the frequency in column :data:`COUNT`.
-
-    Columns: the modifiers (bins as their left edge), the exposure, the outcome (0/1 outcome) or
-    ``__s1``/``__s2`` (sums of the centred outcome and its square), the confounders' levels when
-    ``confounders`` (Mantel-Haenszel), and :data:`COUNT`. With a confounder design ``des``, the same
-    scan also sums every design column ``u_j = x_j - shift_j`` and its square per cell (for the
-    balance checks): returned as a third table, row for row with the first, columns ``d{j}``, ``q{j}``.
-    Returns ``(table, notes, sums or None)``.
-    """
+def _cell_columns(src, spec: Spec, ins: Inspection, *, confounders: bool):
+    """Row columns of the table of counts' scan and the names it groups by: modifier keys ``k*``,
+    exposure ``e``, Mantel-Haenszel confounder keys ``c*``, outcome ``y`` (a numeric outcome centred,
+    and not grouped) and frequency ``w``. Returns ``(columns, group names, confounder keys, notes)``."""
     inner = [(f"k{i}", expr) for i, (_, expr, _, _) in enumerate(ins.keys)]
     inner.append(("e", _col(src, spec.exposure)))
     mh, notes = _mh_keys(src, spec, ins) if confounders else ([], [])
@@ -335,6 +328,81 @@ def cell_table(src, spec: Spec, ins: Inspection, *, confounders: bool, des: _Des
     else:
         inner.append(("y", fmt("({} - {})", y, value(ins.centre))))
     inner.append(("w", _as_double(src, spec.counts) if spec.counts else raw("1.0")))
+    return inner, groups, mh, notes
+
+
+def _ranked(src, row_cols: list, where: Frag) -> Frag:
+    """The rows' columns plus ``rn``, each row's rank among rows with the same values: with the
+    values, a name for the row that does not depend on the order the engine reads the rows in."""
+    cols = ", ".join(a for a, _ in row_cols)
+    body = fmt("SELECT {} FROM {} WHERE {}", _select(row_cols), src.table, where)
+    return fmt("SELECT *, ROW_NUMBER() OVER (PARTITION BY " + cols + " ORDER BY " + cols + ") AS rn "
+               "FROM ({}) r0", body)
+
+
+def _with_replicates(src, body: Frag, row_names: list, n_boot: int, seed: int, keep: list) -> Frag:
+    """``body`` crossed with the replicate numbers ``b``; each row of each replicate gets a Poisson(1)
+    frequency ``pw`` from a hash of its values, ``rn``, ``b`` and ``seed`` (see
+    :func:`poisson_replicates`). Keeps the columns ``keep`` (as named in ``body``) and ``b``."""
+    u = src.dialect.uniform([raw("t." + c) for c in row_names] + [raw("t.rn"), raw("rb.b"), value(int(seed))])
+    kept = ", ".join(f"t.{c} AS {c}" for c in keep)
+    draws = fmt("SELECT " + kept + ", rb.b AS b, {} AS u FROM ({}) t CROSS JOIN ({}) rb", u, body,
+                src.dialect.replicate_numbers(n_boot))
+    return fmt("SELECT " + ", ".join(keep) + ", b, {} AS pw FROM ({}) d", _poisson_weight(raw("u")), draws)
+
+
+def poisson_cells(src, spec: Spec, ins: Inspection, table: pd.DataFrame, *, confounders: bool):
+    """Poisson-bootstrap replicates of the table of counts of a numeric outcome, in one scan.
+
+    Every row gets a Poisson(1) frequency per replicate (as :func:`poisson_replicates`), and each
+    cell's replicate frequency and sum of the centred outcome are summed in the engine, so each
+    replicate's cell means are exact (no linearisation): crude and Mantel-Haenszel use nothing else
+    to estimate. Returns ``(n, sy)``, arrays (n_boot, cells) in the row order of ``table`` (the
+    table of :func:`cell_table`, before :func:`moment_rows`).
+    """
+    inner, groups, _, _ = _cell_columns(src, spec, ins, confounders=confounders)
+    names = [a for a, _ in inner]
+    body = _with_replicates(src, _ranked(src, inner, ins.where), names, spec.n_boot, spec.seed,
+                            keep=groups + ["y", "w"])
+    g = ", ".join(groups + ["b"])
+    got = src.run(fmt("SELECT " + g + ", SUM(pw * w) AS n, SUM(pw * w * y) AS sy FROM ({}) p GROUP BY "
+                      + g, body))
+    index = {}
+    key_cols = [table[c].to_numpy() for c in table.columns[:len(groups)]]
+    for i in range(len(table)):
+        index[tuple(_plain(col[i]) for col in key_cols)] = i
+    # the table of counts shows a binned modifier by its left edge; the scan groups by bin number
+    shown = []
+    for i, (_, _, edges, _) in enumerate(ins.keys):
+        col = got[f"k{i}"]
+        shown.append(np.asarray(edges)[col.to_numpy(int)] if edges is not None else col.to_numpy())
+    shown += [got[c].to_numpy() for c in groups[len(ins.keys):]]
+    rows = np.array([index[tuple(_plain(col[r]) for col in shown)] for r in range(len(got))], dtype=np.int64)
+    n = np.zeros((spec.n_boot, len(table)))
+    sy = np.zeros((spec.n_boot, len(table)))
+    b = got["b"].to_numpy(int)
+    n[b, rows] = got["n"].to_numpy(float)
+    sy[b, rows] = got["sy"].to_numpy(float)
+    return n, sy
+
+
+def _plain(v):
+    """A cell key as a hashable plain value (numpy scalars and NaN-free floats compare equal)."""
+    return v.item() if hasattr(v, "item") else v
+
+
+def cell_table(src, spec: Spec, ins: Inspection, *, confounders: bool, des: _Design | None = None
+               ) -> tuple[pd.DataFrame, list, pd.DataFrame | None]:
+    """The table of counts: one row per observed cell, with the frequency in column :data:`COUNT`.
+
+    Columns: the modifiers (bins as their left edge), the exposure, the outcome (0/1 outcome) or
+    ``__s1``/``__s2`` (sums of the centred outcome and its square), the confounders' levels when
+    ``confounders`` (Mantel-Haenszel), and :data:`COUNT`. With a confounder design ``des``, the same
+    scan also sums every design column ``u_j = x_j - shift_j`` and its square per cell (for the
+    balance checks): returned as a third table, row for row with the first, columns ``d{j}``, ``q{j}``.
+    Returns ``(table, notes, sums or None)``.
+    """
+    inner, groups, mh, notes = _cell_columns(src, spec, ins, confounders=confounders)
     aggs = "SUM(w) AS n" + ("" if ins.binary else ", SUM(w * y) AS s1, SUM(w * y * y) AS s2")
     p = len(des.exprs) if des is not None else 0
     for j in range(p):
@@ -825,18 +893,11 @@ def poisson_replicates(src, row_cols: list, layers: list, S: StratumTable, where
     """
     k = len(okmask)
     cols = [a for a, _ in row_cols]
-    body = fmt("SELECT {} FROM {} WHERE {}", _select(row_cols), src.table, where)
-    order = ", ".join(cols)
-    body = fmt("SELECT *, ROW_NUMBER() OVER (PARTITION BY " + order + " ORDER BY " + order + ") AS rn "
-               "FROM ({}) r0", body)
-    body = S.joined(body)
+    body = S.joined(_ranked(src, row_cols, where))
     for i, layer in enumerate(layers):
         if layer:
             body = fmt("SELECT *, {} FROM (" + "{}" + f") l{i}", _select(layer), body)
-    u = src.dialect.uniform([raw(c) for c in cols] + [raw("rn"), raw("rb.b"), value(int(seed))])
-    draws = fmt("SELECT t.s AS s, rb.b AS b, t.w AS w, t.f1 AS f1, t.f0 AS f0, {} AS u FROM ({}) t "
-                "CROSS JOIN ({}) rb", u, body, src.dialect.replicate_numbers(n_boot))
-    weighted = fmt("SELECT s, b, w, f1, f0, {} AS pw FROM ({}) d", _poisson_weight(raw("u")), draws)
+    weighted = _with_replicates(src, body, cols, n_boot, seed, keep=["s", "w", "f1", "f0"])
     q = fmt("SELECT s, b, SUM(pw * w) AS n, SUM(pw * w * f1) AS t1, SUM(pw * w * f0) AS t0 "
             "FROM ({}) p GROUP BY s, b", weighted)
     got = src.run(q)
@@ -930,7 +991,6 @@ def _irls(src, base, ins, Z, masks, okmask, *, binary, need_om, tol, max_iter, s
     last_rel = {"ps": np.full(k, np.inf), "om": np.full(k, np.inf)}
     fam_om = "binomial" if binary else "gaussian"
     nq = P * (P + 1) // 2
-    iu = np.triu_indices(P)
     for it in range(max_iter):
         todo = [t for t in ("ps", "om") if active[t].any()]
         if not todo:
