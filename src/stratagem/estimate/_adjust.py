@@ -516,7 +516,9 @@ def boot_means(prep: Prepared, spec: Spec, W: np.ndarray, unit_means, *, need_ps
     """Bootstrap replicates ``(m1, m0)`` of shape (B, G) from replicate row frequencies ``W`` (B, n).
 
     Every stratum's models are refitted for all replicates at once (batched Newton, started from the
-    full-sample fit). A replicate whose fit fails in a stratum gets NaN there (and overall).
+    full-sample fit: a chord step with the shared information, then Newton steps to ``BOOT_TOL``;
+    see :func:`stratagem.estimate.glm._chord_start`), so each replicate is the full refit of the
+    models on its frequencies. A replicate whose fit fails in a stratum gets NaN there (and overall).
     """
     start = _recall(prep, spec)
     if start is None:

@@ -17,7 +17,10 @@ a single model's Newton step is one pass over ``X`` in blocks of rows that stay 
 the solution the information of the last Newton step is reused while only the score is recomputed
 (the chord method; Kelley, *Iterative Methods for Linear and Nonlinear Equations*, 1995, sec. 5.4).
 Many models (bootstrap replicates) are held rows by models, with the products of column pairs
-computed once. Every matrix product is cut into pieces small enough that OpenBLAS runs each on one
+computed once; when they all start from one point (replicates started from the full-sample fit)
+their first step is a chord step with one information matrix shared by all (:func:`_chord_start`),
+which costs a score instead of an information per model, and the Newton steps that follow (the
+convergence test is always on a Newton step) need one step fewer. Every matrix product is cut into pieces small enough that OpenBLAS runs each on one
 thread, summed in a fixed order (:func:`dot_rows`, :func:`dot_cols`): results are bit-identical
 whatever the number of BLAS threads, and small products do not pay for waking BLAS threads.
 
@@ -465,9 +468,9 @@ def _chord_start(X, y, Wt, M, b0, colmax):
     models. The step solves it with one information matrix shared by all the models,
     ``X' diag(mean_b W_b mu0 (1 - mu0)) X`` (for bootstrap replicates started from the full-sample
     fit, this is the full-sample information up to resampling noise): the chord method (Ortega &
-    Rheinboldt, *Iterative Solution of Nonlinear Equations in Several Variables*, 1970, sec. 7.1,
-    from memory), whose step here is a Newton step up to the relative difference between the shared
-    and each model's own information. Newton steps follow from the points returned, so the fits
+    Rheinboldt, *Iterative Solution of Nonlinear Equations in Several Variables*, 1970, from
+    memory), whose step here is a Newton step up to the relative difference between the shared and
+    each model's own information. Newton steps follow from the points returned, so the fits
     end at the same root of the score equations, to the same tolerance; the chord step only
     replaces the first, most expensive-to-batch Newton step by one that costs a score.
 
