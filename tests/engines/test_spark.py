@@ -71,6 +71,12 @@ def test_spark_equals_pandas_and_duckdb(sdf, method, tol):
     _same(a, s, tol)
     _same(d, s, tol)
     assert "Spark" in s.notes[-1]
+    # the same Checks as DuckDB's (arm sizes, balance, propensities, weights), then Spark's own facts
+    sc, dc = s.diagnostics, d.diagnostics
+    sc, dc = sc[~sc["check"].str.contains("Spark")], dc[~dc["check"].str.contains("DuckDB")]
+    assert list(zip(sc["stratum"], sc["check"], sc["arm"])) == list(zip(dc["stratum"], dc["check"], dc["arm"]))
+    np.testing.assert_allclose(sc["value"].to_numpy(float), dc["value"].to_numpy(float), rtol=1e-6, atol=1e-8)
+    assert list(sc["warning"]) == list(dc["warning"])
 
 
 def test_spark_errors_before_any_job(spark, sdf):
