@@ -21,8 +21,9 @@ __all__ = ["DuckDBSource", "is_duckdb", "from_duckdb", "PARQUET_CONNECTION"]
 
 #: Settings of the connections stratagem opens itself (for Parquet paths): DuckDB's own memory
 #: (buffers, hash tables) is capped so the Python process stays well under 2 GiB while it streams a
-#: file of any size (DuckDB spills to a temporary folder beyond it), one thread per core, and rows need
-#: not keep their file order (aggregates do not depend on it, and keeping order costs memory).
+#: file of any size (DuckDB spills to a temporary folder beyond it), one thread per core, rows need
+#: not keep their file order (aggregates do not depend on it, and keeping order costs memory), and no
+#: progress bar (the Explorer shows its own state).
 #: Change the dict before calling :func:`stratagem.analyze` to use other values; a relation the user
 #: passes keeps the settings of its own connection.
 PARQUET_CONNECTION = {
@@ -83,6 +84,7 @@ def from_duckdb(data) -> DuckDBSource:
 
     if isinstance(data, (str, Path)):
         con = duckdb.connect(config=dict(PARQUET_CONNECTION))
+        con.execute("SET enable_progress_bar = false")  # a connection option, not a global one
         return DuckDBSource(con, con.read_parquet(str(data)))
     con = getattr(data, "_con", None)  # the relation's own connection, where its view must live
     if con is None:  # pragma: no cover - relations of other duckdb builds
