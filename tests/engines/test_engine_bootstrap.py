@@ -135,6 +135,10 @@ def test_numeric_outcome_counts_methods_bootstrap(demo, method):
     width = lambda r: (r.strata["ci_high"] - r.strata["ci_low"]).to_numpy()  # noqa: E731
     np.testing.assert_allclose(width(engine), width(memory), rtol=0.15)
     assert any(n.startswith("Bootstrap in DuckDB: 1,000 Poisson-weighted") for n in engine.notes)
+    smd = lambda r: r.diagnostics[r.diagnostics["check"].str.startswith("smd")]  # noqa: E731
+    assert len(smd(memory)) > 0
+    np.testing.assert_allclose(smd(engine)["value"].to_numpy(float), smd(memory)["value"].to_numpy(float),
+                               atol=1e-9)
     shuffled = demo.sample(frac=1.0, random_state=8).reset_index(drop=True)
     again = sg.analyze(_rel(shuffled), **kw)
     np.testing.assert_allclose(again.extra["replicates"][0], engine.extra["replicates"][0], rtol=1e-9, atol=1e-9)

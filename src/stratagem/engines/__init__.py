@@ -133,8 +133,8 @@ def analyze_engine(data: Any, spec: Spec, progress: Callable[[float], None] | No
         from ..analysis import analyze
 
         result = analyze(table, cspec, progress=progress)
-        if des is not None:  # balance before adjustment, as the in-memory Checks of crude and MH
-            result.extra["engine_balance"] = _cell_balance(table, cspec, des, cell_sums, n_cells)
+    if des is not None:  # balance before adjustment, as the in-memory Checks of crude and MH
+        result.extra["engine_balance"] = _cell_balance(table, cspec, des, cell_sums, n_cells)
     notes = list(result.notes)[len(bins):]  # the table of counts' own binning notes, replaced below
     notes = list(ins.notes) + key_notes + mh_notes + [n for n in notes if not n.startswith("Checks: ")]
     diagnostics = _engine_diagnostics(result, src, ins)
