@@ -184,7 +184,7 @@ def _effects_table(prep: Prepared, spec: Spec, gm: GroupMeans, replicates, theta
     columns.update(n=gm.n, n_exposed=gm.n1, n_unexposed=gm.n0, mean_exposed=gm.m1,
                    mean_unexposed=gm.m0, estimate=est, se=se, ci_low=lo, ci_high=hi, p_value=p,
                    status=status)
-    return pd.DataFrame(columns, index=labels.index)
+    return pd.DataFrame(columns, index=labels.index, columns=[*spec.strata, *STRATA_COLUMNS])
 
 
 def _percentile(spec: Spec, theta, theta_b):
