@@ -11,15 +11,18 @@ Traits, in three kinds (see DESIGN.md and the widget contract):
 
 Every change of an input builds a new Spec and calls :func:`stratagem.analyze` on a worker thread;
 the newest request supersedes running ones (their results are dropped); the result is published as
-JSON (:func:`~.payload.analysis_payload`) together with a static HTML snapshot that replaces the
-``text/html`` of every displayed copy of the widget (through its display id). When a target
+JSON (:func:`~.payload.analysis_payload`), and right after that message a static HTML snapshot
+replaces the ``text/html`` of every displayed copy of the widget (through its display id). When a target
 population is picked (``target=`` or :meth:`Explorer.set_target`), each new Analysis is also passed
 to :func:`stratagem.transport`, and the effect in the target is shown beside the overall effect.
 Nothing shown is computed anywhere but in ``analyze`` and ``transport``.
 
 A choice seen before (the same Spec on a table whose columns still hash the same) reuses its
 Analysis instead of computing it again: ``analyze`` is a pure function of the table and the Spec, so
-the numbers are the same; a table changed in place is analysed again.
+the numbers are the same; a table changed in place is analysed again. Each computation reads a
+shallow copy of the table (under pandas' copy-on-write, later edits of the table do not reach it),
+and the digest of a new choice is taken from that copy after its result is published, so hashing
+the columns does not delay the first view of a choice.
 """
 
 from __future__ import annotations
