@@ -1,4 +1,4 @@
-"""Poisson bootstrap of the model-based methods inside an engine (``passes.poisson_replicates``).
+"""Poisson bootstrap of the model-based methods inside an engine (``replicates.poisson_replicates``).
 
 Checks: the Poisson(1) weights drawn in SQL have the Poisson(1) distribution; replicates repeat
 exactly for a random state whatever order the rows are read in, and change with it; identical rows
@@ -15,7 +15,7 @@ import pytest
 duckdb = pytest.importorskip("duckdb")
 
 import stratagem as sg  # noqa: E402
-from stratagem.engines import analyze_engine, passes  # noqa: E402
+from stratagem.engines import analyze_engine, replicates  # noqa: E402
 from stratagem.engines.sql import DUCKDB, fmt, raw  # noqa: E402
 from stratagem.errors import SpecError  # noqa: E402
 from stratagem.spec import Spec  # noqa: E402
@@ -37,7 +37,7 @@ def _rel(df):
 def test_poisson_weights_have_the_poisson_distribution():
     con = duckdb.connect()
     u = DUCKDB.uniform([raw("i"), raw("b")])
-    w = passes._poisson_weight(raw("u"))
+    w = replicates._poisson_weight(raw("u"))
     q = fmt("SELECT {} AS pw FROM (SELECT i, b, {} AS u FROM range(20000) t(i) CROSS JOIN "
             "(SELECT range AS b FROM range(10)) r) x", w, u)
     pw = con.execute(q.text, list(q.params)).df()["pw"].to_numpy()

@@ -5,10 +5,10 @@ which returns the same :class:`~stratagem.results.Analysis` (same tables, same c
 numbers as the in-memory path on the same rows) while the rows stay in the engine:
 
 * crude and Mantel-Haenszel need only counts per cell, so one grouped query builds a small table of
-  counts (:func:`.passes.cell_table`) and the in-memory estimators, tests and toolkit run on it;
+  counts (:func:`.counts.cell_table`) and the in-memory estimators, tests and toolkit run on it;
 * standardization, IPW and AIPW fit their per-stratum models by Newton/IRLS in which every iteration
   is one grouped query (``X'WX`` and ``X'W(z)`` per stratum), then two more queries give the
-  potential-outcome means and the influence-function variances (:func:`.passes.model_means`).
+  potential-outcome means and the influence-function variances (:func:`.models.model_means`).
 
 Bootstrap intervals (crude and Mantel-Haenszel with a 0/1 outcome) resample individuals through the
 table of counts: drawing ``n`` individuals with replacement and counting them per cell is one
@@ -18,11 +18,11 @@ Tibshirani 1993, *An Introduction to the Bootstrap*, ch. 6; the equivalence is t
 multinomial). The replicates have the same distribution as on the raw rows, but not the same random
 stream, so engine and in-memory bootstrap intervals agree within Monte Carlo error, not digit for digit.
 Standardization, IPW and AIPW take the Poisson bootstrap in one more scan
-(:func:`.passes.poisson_replicates`): every row gets a Poisson(1) frequency per replicate, a fixed
+(:func:`.replicates.poisson_replicates`): every row gets a Poisson(1) frequency per replicate, a fixed
 function of its values, so replicates repeat exactly on every run; the replicates are the linearised
 (influence-function) ones, first-order equivalent to refitting the models per replicate. Crude and
 Mantel-Haenszel with a numeric outcome take the same Poisson weights, summed per cell of the table of
-counts in one scan, so each replicate's cell means are exact (:func:`.passes.poisson_cells`).
+counts in one scan, so each replicate's cell means are exact (:func:`.counts.poisson_cells`).
 """
 
 from __future__ import annotations
@@ -38,7 +38,7 @@ from .. import frame as fr
 from ..errors import SpecError
 from ..results import DIAGNOSTIC_COLUMNS, OVERALL_FIELDS, Analysis
 from ..spec import Spec
-from . import passes
+from . import balance, checks, counts, design, models
 from .duckdb_engine import from_duckdb, is_duckdb
 from .spark_engine import SparkSource, is_spark
 
@@ -96,7 +96,7 @@ def analyze_engine(data: Any, spec: Spec, progress: Callable[[float], None] | No
     _engine_limits(spec)
     src = source_for(data)
     method_hint = spec.method
-    ins = passes.inspect(src, spec, confounder_levels=method_hint in MODEL_METHODS)
+    ins = checks.inspect(src, spec, confounder_levels=method_hint in MODEL_METHODS)
     resolved = fr.resolve(spec, ins.binary)
     model = resolved.method in MODEL_METHODS
     poisson = resolved.interval == "bootstrap" and (model or not ins.binary)  # else multinomial cells
@@ -107,23 +107,23 @@ def analyze_engine(data: Any, spec: Spec, progress: Callable[[float], None] | No
             "draw with its own frequency as mean); pass interval='wald', or analyse the table in pandas."
         )
     mh = resolved.method == "mantel-haenszel"
-    des = passes.design(src, resolved, ins) if not model and resolved.confounders else None
-    table, mh_notes, cell_sums = passes.cell_table(src, resolved, ins, confounders=mh, des=des)
+    des = design.design(src, resolved, ins) if not model and resolved.confounders else None
+    table, mh_notes, cell_sums = counts.cell_table(src, resolved, ins, confounders=mh, des=des)
     n_cells = len(table)
     cell_reps = None
     if poisson and not model:  # a numeric outcome's crude or Mantel-Haenszel bootstrap
-        cell_reps = passes.poisson_cells(src, resolved, ins, table, confounders=mh)
+        cell_reps = counts.poisson_cells(src, resolved, ins, table, confounders=mh)
     if not ins.binary:
-        table = passes.moment_rows(table, resolved.outcome, ins.centre)
+        table = counts.moment_rows(table, resolved.outcome, ins.centre)
     bins = {name: edges for name, _, edges, _ in ins.keys if edges is not None}
     key_notes = [note for _, _, _, note in ins.keys if note]
     confounders = ()
     if resolved.method in ("crude", "mantel-haenszel"):
-        confounders = tuple(passes.confounder_alias(i) for i in range(len(resolved.confounders)))
+        confounders = tuple(counts.confounder_alias(i) for i in range(len(resolved.confounders)))
     if resolved.method == "crude":  # crude ignores confounders but says so: keep placeholders
         for name in confounders:
             table[name] = 0.0
-    cspec = resolved.replace(counts=passes.COUNT, bins=bins, confounders=confounders, interval="wald"
+    cspec = resolved.replace(counts=counts.COUNT, bins=bins, confounders=confounders, interval="wald"
                              if model else resolved.interval)
     if model:
         result = _model_analysis(src, resolved, cspec, ins, table)
@@ -169,7 +169,7 @@ def _model_analysis(src, spec: Spec, cspec: Spec, ins, table: pd.DataFrame) -> A
         key_cols.append(np.searchsorted(np.asarray(edges), col.astype(float)) if edges is not None else col)
     for i in range(len(table)):
         keys_to_stratum.setdefault(tuple(c[i] for c in key_cols), int(prep.stratum[i]))
-    gm = passes.model_means(src, spec, ins, prep, keys_to_stratum, name=spec.method)
+    gm = models.model_means(src, spec, ins, prep, keys_to_stratum, name=spec.method)
     replicates = gm.extra.pop("engine_replicates", None)
     if replicates is not None:
         gm.notes.append(
@@ -182,8 +182,8 @@ def _model_analysis(src, spec: Spec, cspec: Spec, ins, table: pd.DataFrame) -> A
 def _cells_bootstrap_analysis(src, spec: Spec, cspec: Spec, ins, table: pd.DataFrame, cell_reps) -> Analysis:
     """Crude or Mantel-Haenszel with a numeric outcome and Poisson-bootstrap intervals.
 
-    The table of counts holds each cell as two rows at ``mean -+ sd`` (:func:`.passes.moment_rows`).
-    A replicate's cell frequency ``n_b`` and outcome sum ``S_b`` (:func:`.passes.poisson_cells`) are
+    The table of counts holds each cell as two rows at ``mean -+ sd`` (:func:`.counts.moment_rows`).
+    A replicate's cell frequency ``n_b`` and outcome sum ``S_b`` (:func:`.counts.poisson_cells`) are
     given to the two rows as frequencies ``W_lo + W_hi = n_b`` with ``W_lo y_lo + W_hi y_hi = S_b``,
     so the replicate's cell mean is exact; the estimators' vectorised bootstrap then pools the cells
     with the point estimate's formulas (a frequency may be negative when a replicate's mean falls
@@ -249,7 +249,7 @@ def _cell_balance(table: pd.DataFrame, cspec: Spec, des, cell_sums: pd.DataFrame
     prep, _ = fr.prepare(table, cspec.replace(method="crude", interval="wald"))
     k, p = prep.n_strata, len(des.exprs)
     stratum, a = prep.stratum[:n_cells], prep.a[:n_cells]
-    n = table[passes.COUNT].to_numpy(float)[:n_cells] * (1.0 if n_cells == len(table) else 2.0)
+    n = table[counts.COUNT].to_numpy(float)[:n_cells] * (1.0 if n_cells == len(table) else 2.0)
 
     def per_stratum(v):
         return np.bincount(stratum, weights=v, minlength=k)
@@ -261,7 +261,7 @@ def _cell_balance(table: pd.DataFrame, cspec: Spec, des, cell_sums: pd.DataFrame
             "da": np.column_stack([per_stratum(a * d[:, j]) for j in range(p)]) if p else np.zeros((k, 0)),
             "qq": np.column_stack([per_stratum(q[:, j]) for j in range(p)]) if p else np.zeros((k, 0)),
             "qa": np.column_stack([per_stratum(a * q[:, j]) for j in range(p)]) if p else np.zeros((k, 0))}
-    return passes.balance(des, sums)
+    return balance.balance(des, sums)
 
 
 def _engine_diagnostics(result: Analysis, src, ins) -> pd.DataFrame:
