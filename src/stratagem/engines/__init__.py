@@ -6,9 +6,13 @@ numbers as the in-memory path on the same rows) while the rows stay in the engin
 
 * crude and Mantel-Haenszel need only counts per cell, so one grouped query builds a small table of
   counts (:func:`.counts.cell_table`) and the in-memory estimators, tests and toolkit run on it;
-* standardization, IPW and AIPW fit their per-stratum models by Newton/IRLS in which every iteration
-  is one grouped query (``X'WX`` and ``X'W(z)`` per stratum), then two more queries give the
-  potential-outcome means and the influence-function variances (:func:`.models.model_means`).
+* standardization, IPW and AIPW fit their per-stratum models by Newton and chord steps in which every
+  step is one grouped query (``X'WX`` and ``X'W(z)`` per stratum, or only ``X'W(z)``), then one or two
+  more queries give the potential-outcome means, the influence-function variances and the checks
+  (:func:`.models.model_means`).
+
+The Checks (``Analysis.diagnostics``) are the in-memory table, computed from the same queries, plus
+two rows saying where the data stayed and how many full scans were made.
 
 Bootstrap intervals (crude and Mantel-Haenszel with a 0/1 outcome) resample individuals through the
 table of counts: drawing ``n`` individuals with replacement and counting them per cell is one
