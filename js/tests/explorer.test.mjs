@@ -4,7 +4,7 @@ import assert from "node:assert/strict";
 import { installDom, fakeModel, baseState, result, row, dragEvent } from "./helpers.mjs";
 
 installDom();
-const { default: widget, axis, niceTicks, placeColumn, shiftColumn, HEAD_H, ROW_H } = await import("../explorer.js");
+const { default: widget, axis, niceTicks, placeColumn, shiftColumn, fmtCheck, HEAD_H, ROW_H } = await import("../explorer.js");
 
 let el;
 beforeEach(() => {
@@ -606,4 +606,29 @@ test("focus is left alone when the user moved it elsewhere", async () => {
   assert.equal(document.activeElement, outside);
   cleanup2();
   outside.remove();
+});
+
+test("fmtCheck: whole numbers without decimals, others to 3, both with thousands separators", () => {
+  assert.equal(fmtCheck(100000000), "100,000,000");
+  assert.equal(fmtCheck(11), "11");
+  assert.equal(fmtCheck(1147.4712), "1,147.471");
+  assert.equal(fmtCheck(-0.0421), "-0.042");
+  assert.equal(fmtCheck(NaN), "—");
+  assert.equal(fmtCheck(null), "—");
+});
+
+test("Checks open with where the data stayed only for a table in an engine", () => {
+  const diagnostics = [{ stratum: "overall", check: "n", arm: "exposed", value: 1617, warning: "" }];
+  const engine = { engine: "DuckDB", rows: 100000000, scans: 9 };
+  const inEngine = mount({ _result: result([row("overall")], { diagnostics, engine }) }).root;
+  inEngine.querySelector('[data-view="checks"]').click();
+  assert.match(inEngine.querySelector(".sg-checks").textContent,
+    /The data stayed in DuckDB: 100,000,000 rows scanned in 9 full scan\(s\)/);
+  document.body.replaceChildren();
+  el = document.createElement("div");
+  document.body.append(el);
+  const inMemory = mount({ _result: result([row("overall")], { diagnostics, engine: {} }) }).root;
+  inMemory.querySelector('[data-view="checks"]').click();
+  assert.doesNotMatch(inMemory.querySelector(".sg-checks").textContent, /The data stayed in/);
+  assert.match(inMemory.querySelector(".sg-checks").textContent, /1,617/);
 });
