@@ -40,11 +40,14 @@ def write_notebook(folder: Path, name: str, cells: list[str]) -> str:
 def open_and_run(page, server, notebook: str, *, timeout: float = 90_000) -> None:
     """Open the notebook in the session's JupyterLab, wait for its kernel, then run every cell.
 
+    The commands' results (widgets) are not returned to Python: serialising a widget can fail with
+    "object reference chain is too long".
+
     Waits for the session to be ready and the kernel idle before running: the toolbar's indicator
     says idle before the kernel session exists, and "run all" would then open a kernel picker.
     """
-    page.evaluate("(path) => window.jupyterapp.commands.execute('docmanager:open', "
-                  "{path, factory: 'Notebook'})", notebook)
+    page.evaluate("async (path) => { await window.jupyterapp.commands.execute('docmanager:open', "
+                  "{path, factory: 'Notebook'}); return null; }", notebook)
     page.wait_for_function(
         """(name) => {
             const w = window.jupyterapp.shell.currentWidget;
@@ -55,7 +58,8 @@ def open_and_run(page, server, notebook: str, *, timeout: float = 90_000) -> Non
         arg=notebook,
         timeout=timeout,
     )
-    page.evaluate("() => window.jupyterapp.commands.execute('notebook:run-all-cells')")
+    page.evaluate("async () => { await window.jupyterapp.commands.execute('notebook:run-all-cells'); "
+                  "return null; }")
 
 
 def wait_cells_done(page, *, timeout: float = 120_000) -> None:
@@ -82,7 +86,7 @@ def cell_errors(page) -> list[str]:
 
 
 def save_notebook(page) -> None:
-    page.evaluate("() => window.jupyterapp.commands.execute('docmanager:save')")
+    page.evaluate("async () => { await window.jupyterapp.commands.execute('docmanager:save'); return null; }")
 
 
 def css_string(value: str) -> str:

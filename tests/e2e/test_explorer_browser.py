@@ -314,8 +314,8 @@ def test_light_and_dark_theme(page, lab_server, artifacts):
     light = root.evaluate(COLOURS_JS)
     root.screenshot(path=str(artifacts / "explorer-light.png"))
     try:
-        page.evaluate("() => window.jupyterapp.commands.execute('apputils:change-theme',"
-                      " {theme: 'JupyterLab Dark'})")
+        page.evaluate("async () => { await window.jupyterapp.commands.execute('apputils:change-theme',"
+                      " {theme: 'JupyterLab Dark'}); return null; }")
         page.wait_for_function("() => document.body.dataset.jpThemeName === 'JupyterLab Dark'")
         page.wait_for_timeout(500)  # the theme's stylesheet swaps in after the attribute
         dark = root.evaluate(COLOURS_JS)
@@ -323,8 +323,8 @@ def test_light_and_dark_theme(page, lab_server, artifacts):
         root.screenshot(path=str(shot))
         print(f"\nlight: {light}\ndark:  {dark}\nscreenshots: {artifacts / 'explorer-light.png'}, {shot}")
     finally:
-        page.evaluate("() => window.jupyterapp.commands.execute('apputils:change-theme',"
-                      " {theme: 'JupyterLab Light'})")
+        page.evaluate("async () => { await window.jupyterapp.commands.execute('apputils:change-theme',"
+                      " {theme: 'JupyterLab Light'}); return null; }")
     assert light["root"] != dark["root"], f"text colour ignores the theme: {light} vs {dark}"
     assert light["cell"] != dark["cell"], f"table text colour ignores the theme: {light} vs {dark}"
     for theme in (light, dark):
