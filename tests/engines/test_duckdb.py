@@ -62,17 +62,6 @@ def assert_same_checks(a, b):
 CONF = ("age", "deprivation", "clinic_visits", "years_diagnosed", "district")
 
 
-@pytest.fixture(scope="module")
-def demo():
-    return sg.demo_data()
-
-
-@pytest.fixture(scope="module")
-def rel(demo):
-    con = duckdb.connect()
-    return con.from_df(demo)
-
-
 def _both(df, rel, **kw):
     return sg.analyze(df, **kw), analyze_engine(rel, Spec(**kw))
 

@@ -25,11 +25,6 @@ BASE = dict(exposure="visited", outcome="on_target", strata=("lives_alone",), co
             interval="bootstrap")
 
 
-@pytest.fixture(scope="module")
-def demo():
-    return sg.demo_data()
-
-
 def _rel(df):
     return duckdb.connect().from_df(df)
 

@@ -14,16 +14,6 @@ from stratagem.widgets.payload import analysis_payload  # noqa: E402
 CONF = ("age", "deprivation", "clinic_visits", "years_diagnosed", "district")
 
 
-@pytest.fixture(scope="module")
-def demo():
-    return sg.demo_data()
-
-
-@pytest.fixture(scope="module")
-def rel(demo):
-    return duckdb.connect().from_df(demo)
-
-
 def test_modifier_summary_matches_pandas(demo, rel):
     for column in demo.columns:
         assert engines.modifier_summary(rel, column) == modifier_summary(demo, column), column

@@ -46,11 +46,6 @@ def spark():
 
 
 @pytest.fixture(scope="module")
-def demo():
-    return sg.demo_data()
-
-
-@pytest.fixture(scope="module")
 def sdf(spark, demo):
     cols = ["sex", "insulin", "age", "deprivation", "clinic_visits", "years_diagnosed", "district",
             "visited", "on_target"]

@@ -15,7 +15,7 @@ import pandas as pd
 
 from ..estimate._adjust import dropped_notes
 from ..estimate.base import OK, GroupMeans
-from ..estimate.design import independent_from_covariance
+from ..estimate.design import dropped_column_notes, independent_from_covariance
 from ..spec import Spec
 from .balance import balance, moment_sums
 from .checks import Inspection
@@ -84,14 +84,7 @@ def model_means(src, spec: Spec, ins: Inspection, prep, keys_to_stratum: dict, *
                 / np.where(N > 0, N, 1.0)[:, None, None]
         cov_all = (sxx.sum(axis=0) - np.outer(sx.sum(axis=0), sx.sum(axis=0)) / total_w) / total_w
         keep, reason = independent_from_covariance(cov_all)
-        for j in np.flatnonzero(~keep):
-            if reason[j] == "constant":
-                notes.append(f"Confounder column {des.names[j]!r} is constant and was dropped.")
-            else:
-                notes.append(
-                    f"Confounder column {des.names[j]!r} is an exact linear combination of other confounder "
-                    "columns (collinear) and was dropped; the adjustment is unchanged."
-                )
+        notes.extend(dropped_column_notes(des.names, keep, reason))
         kept = np.flatnonzero(keep)
         sd = np.sqrt(np.maximum(np.diag(cov_all)[kept], 0.0))
         sd = np.where(sd > 0, sd, 1.0)

@@ -27,7 +27,7 @@ import pandas as pd
 
 from .glm import dot_cols, weighted_gram  # products whose result does not depend on BLAS threads
 
-__all__ = ["Design", "confounder_design", "independent_columns", "independent_from_covariance"]
+__all__ = ["Design", "confounder_design", "independent_columns", "independent_from_covariance", "dropped_column_notes"]
 
 RANK_TOL = 1e-9  # a column whose unexplained share of variance is below this is redundant
 
@@ -173,6 +173,21 @@ def independent_from_covariance(gram: np.ndarray, tol: float = RANK_TOL):
     return keep, reason
 
 
+def dropped_column_notes(names, keep: np.ndarray, reason) -> list[str]:
+    """One note per design column left out by :func:`independent_columns` (or
+    :func:`independent_from_covariance`): constant, or a linear combination of the others."""
+    notes = []
+    for j in np.flatnonzero(~keep):
+        if reason[j] == "constant":
+            notes.append(f"Confounder column {names[j]!r} is constant and was dropped.")
+        else:
+            notes.append(
+                f"Confounder column {names[j]!r} is an exact linear combination of other confounder "
+                "columns (collinear) and was dropped; the adjustment is unchanged."
+            )
+    return notes
+
+
 def confounder_design(
     frame: pd.DataFrame, *, order: np.ndarray | None = None, w: np.ndarray | None = None
 ) -> Design:
@@ -198,15 +213,7 @@ def confounder_design(
     ww = None if w is None else (np.asarray(w, dtype=float) if order is None else np.asarray(w)[order])
     keep, reason = independent_columns(x, ww)
     if not keep.all():
-        for j in np.flatnonzero(~keep):
-            name = plan[j][0]
-            if reason[j] == "constant":
-                notes.append(f"Confounder column {name!r} is constant and was dropped.")
-            else:
-                notes.append(
-                    f"Confounder column {name!r} is an exact linear combination of other confounder "
-                    "columns (collinear) and was dropped; the adjustment is unchanged."
-                )
+        notes.extend(dropped_column_notes([entry[0] for entry in plan], keep, reason))
         x = np.ascontiguousarray(x[:, keep])
         plan = [p for p, k in zip(plan, keep) if k]
     return Design(x, tuple(p[0] for p in plan), tuple(p[1] for p in plan), tuple(notes))
